@@ -243,12 +243,16 @@ class Normaliser:
         return out
 
     def to_attrs(self) -> dict:
-        """Plain-JSON form for Zarr attributes."""
+        """Plain-JSON scalars of the fitted state, for Zarr attributes."""
         return {k: (bool(v) if isinstance(v, bool) else float(v)) for k, v in asdict(self).items()}
 
+    def arrays(self) -> dict[str, np.ndarray]:
+        """Fitted arrays stored beside the atoms (none for per-patch normalisation)."""
+        return {}
+
     @classmethod
-    def from_attrs(cls, attrs: dict) -> "Normaliser":
-        """Inverse of :meth:`to_attrs`."""
+    def from_stored(cls, attrs: dict, arrays: dict[str, np.ndarray]) -> "Normaliser":
+        """Inverse of :meth:`to_attrs` and :meth:`arrays`."""
         return cls(**attrs)
 
 

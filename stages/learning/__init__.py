@@ -17,11 +17,13 @@ Methods
 
 from __future__ import annotations
 
-from typing import Any, Callable, Iterable
+import itertools
+from typing import Any, Callable, Iterable, Iterator
 
 import numpy as np
 
 from ..errors import InputError, problem
+from ..prep import Normaliser
 from ._common import LearnedDictionary
 from .online import online
 
@@ -37,6 +39,8 @@ def learn(
     source: np.ndarray | Iterable[np.ndarray],
     n_atoms: int,
     method: str = "online",
+    *,
+    preprocessing: Normaliser | None = None,
     **options: Any,
 ) -> LearnedDictionary:
     """Learn a dictionary of ``n_atoms`` atoms.
@@ -49,6 +53,10 @@ def learn(
         ``k``, the number of atoms.
     method : str
         A key of :data:`METHODS`.
+    preprocessing : Normaliser, optional
+        Unfitted preprocessing: fitted on the in-memory rows (or on the first
+        mini-batch of a stream), applied to every row before learning, and returned
+        fitted on the result.
     **options
         The learner's own options (see its module).
 
@@ -63,8 +71,26 @@ def learn(
     if int(n_atoms) < 1:
         raise InputError(problem("n_atoms", "a positive integer", repr(n_atoms),
                                  "Ask for at least one atom."))
+    fitted = None
+    if preprocessing is not None:
+        fitted, source = _fit_preprocessing(preprocessing, source)
     try:
-        return METHODS[method](source, int(n_atoms), **options)
+        result = METHODS[method](source, int(n_atoms), **options)
     except TypeError as exc:
         raise InputError(problem(f"options of learner {method!r}", "the method's own options",
                                  str(exc), "See atomline.stages.learning's docstring.")) from exc
+    result.preprocessing = fitted
+    return result
+
+
+def _fit_preprocessing(
+    preprocessing: Normaliser, source: np.ndarray | Iterable[np.ndarray]
+) -> tuple[Normaliser, np.ndarray | Iterator[np.ndarray]]:
+    """Fit on the rows in memory, or on the first batch of a stream, and apply."""
+    if isinstance(source, np.ndarray):
+        fitted = preprocessing.fit(source)
+        return fitted, fitted.apply(source)
+    stream = iter(source)
+    first = np.asarray(next(stream))
+    fitted = preprocessing.fit(first)
+    return fitted, (fitted.apply(np.asarray(b)) for b in itertools.chain([first], stream))

@@ -8,6 +8,7 @@ from typing import Iterable, Iterator
 import numpy as np
 
 from ..errors import InputError, problem
+from ..prep import Normaliser
 
 __all__ = ["LearnedDictionary", "iter_batches", "unit_rows"]
 
@@ -28,12 +29,16 @@ class LearnedDictionary:
         Plain-JSON facts about the result: ``objective`` (trace, one value per
         mini-batch or pass), ``usage`` (how many training rows used each atom),
         ``coherence`` (largest |cos| between two atoms).
+    preprocessing : Normaliser or None
+        The fitted preprocessing; rows must pass through ``preprocessing.apply`` before
+        they are coded with these atoms. ``None`` when the learner saw rows as given.
     """
 
     atoms: np.ndarray
     method: str
     params: dict = field(default_factory=dict)
     diagnostics: dict = field(default_factory=dict)
+    preprocessing: Normaliser | None = None
 
     @property
     def n_atoms(self) -> int:
