@@ -32,7 +32,7 @@ from ..errors import InputError, problem
 from ._common import SparseCodes, check_problem, gram
 from .omp import omp
 
-__all__ = ["code", "METHODS", "SparseCodes", "gram"]
+__all__ = ["code", "code_width", "METHODS", "SparseCodes", "gram"]
 
 #: Coders by their trade name. Each takes validated ``(X, atoms, **options)``.
 METHODS: dict[str, Callable[..., SparseCodes]] = {
@@ -73,3 +73,26 @@ def code(X: np.ndarray, atoms: np.ndarray, method: str = "omp", **options: Any) 
     except TypeError as exc:  # unknown or missing keyword: say which method wanted what
         raise InputError(problem(f"options of coder {method!r}", "the method's own options",
                                  str(exc), "See atomline.stages.coding's docstring.")) from exc
+
+
+def code_width(method: str, n_atoms: int, **options: Any) -> int:
+    """Largest number of slots per row that ``method`` can return with ``options``.
+
+    The encode stage sizes its fixed-width Zarr arrays with this.
+
+    Parameters
+    ----------
+    method : str
+    n_atoms : int
+        ``k``.
+    **options
+        As for :func:`code`.
+
+    Returns
+    -------
+    int
+    """
+    if method == "omp":
+        return int(min(options["n_nonzero"], n_atoms))
+    raise InputError(problem("coding method", f"one of {sorted(METHODS)}", repr(method),
+                             "Pick a listed method."))

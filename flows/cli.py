@@ -1,0 +1,467 @@
+"""The ``atomline`` command.
+
+Every command takes the workspace as a directory or fsspec URL, prints a short human
+report, or JSON with ``--json``. Flows run locally through Prefect; with no Prefect server
+configured, Prefect starts a temporary one for the run (no set-up needed).
+
+    atomline demo [DIR]                      build the demo workspace and run the nightly flow
+    atomline add-records WS NAME FILE.npy    copy records in, chunk by chunk
+    atomline add-labels WS NAME FILE.npy     integer labels, one per record
+    atomline link-records WS NAME URL        use an existing Zarr array without copying
+    atomline train|encode|pool|evaluate WS NAME    run one stage's flow
+    atomline nightly WS NAME                 train → encode → pool → evaluate → promote
+    atomline show WS                         what the workspace holds
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import threading
+import time
+from typing import Any, Callable
+
+DEMO_OPTIONS = dict(n_atoms=128, patch_size=64, stride=32, regions=2, sample_patches=20_000)
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the ``atomline`` command; returns the exit status."""
+    args = _parser().parse_args(argv)
+    _quiet_prefect(args.verbose)
+    from atomline.stages.errors import AtomlineError
+
+    try:
+        result = args.run(args)
+    except AtomlineError as exc:
+        if args.json:
+            print(json.dumps({"error": type(exc).__name__, "message": str(exc)}))
+        else:
+            print(f"atomline: {type(exc).__name__}: {exc}", file=sys.stderr)
+        return 2
+    if args.json:
+        print(json.dumps(result, indent=2, default=_plain))
+    else:
+        print(args.describe(result) if hasattr(args, "describe") else json.dumps(result, indent=2))
+    return 0
+
+
+def _quiet_prefect(verbose: bool) -> None:
+    """Offline-friendly, quiet Prefect defaults; set before Prefect is imported."""
+    os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
+    if not verbose:
+        os.environ.setdefault("PREFECT_LOGGING_LEVEL", "WARNING")
+        os.environ.setdefault("PREFECT_LOGGING_TO_API_ENABLED", "false")
+
+
+def _plain(value: Any) -> Any:
+    import numpy as np
+
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    return str(value)
+
+
+# ---------------------------------------------------------------------------- parser
+def _parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="atomline",
+        description="Sparse-code features for large signal archives, as Prefect flows over a Zarr workspace.",
+    )
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    def command(name: str, run: Callable, describe: Callable | None, help: str) -> argparse.ArgumentParser:
+        sp = sub.add_parser(name, help=help, description=help)
+        sp.set_defaults(run=run, **({"describe": describe} if describe else {}))
+        sp.add_argument("--json", action="store_true", help="print the result as JSON for other tools")
+        sp.add_argument("--verbose", action="store_true", help="show Prefect's own log lines")
+        return sp
+
+    sp = command("demo", _run_demo, _describe_demo,
+                 "build the synthetic vibration workspace and run the nightly flow on it")
+    sp.add_argument("directory", nargs="?", default="atomline-demo.zarr",
+                    help="workspace directory to create or reuse (default: %(default)s)")
+    sp.add_argument("--records", type=int, default=4000, help="number of synthetic records (default: %(default)s)")
+    sp.add_argument("--seed", type=int, default=0, help="seed of the data and the pipeline (default: %(default)s)")
+    _runner_options(sp)
+
+    sp = command("add-records", _run_add_records, _describe_records, "copy records from a .npy file into data/NAME")
+    _ws_name(sp)
+    sp.add_argument("file", help=".npy file of shape (n, L), (n, H, W) or (n, H, W, C), float32/float64; streamed")
+    sp.add_argument("--chunk-rows", type=int, help="rows per Zarr chunk (default: about 4 MiB per chunk)")
+    sp.add_argument("--overwrite", action="store_true", help="replace existing records of that name")
+
+    sp = command("add-labels", _run_add_labels, None, "store integer labels for data/NAME from a .npy file")
+    _ws_name(sp)
+    sp.add_argument("file", help=".npy file of shape (n,), integer classes")
+    sp.add_argument("--overwrite", action="store_true", help="replace existing labels")
+
+    sp = command("link-records", _run_link, _describe_records,
+                 "use an existing Zarr array (any store URL) as data/NAME without copying it")
+    _ws_name(sp)
+    sp.add_argument("url", help="store holding the array (directory or fsspec URL)")
+    sp.add_argument("--path", default="", help="path of the array inside that store")
+    sp.add_argument("--overwrite", action="store_true", help="replace an existing entry of that name")
+
+    sp = command("train", _run_train, None, "learn a dictionary from a sample of data/NAME")
+    _ws_name(sp)
+    _train_options(sp)
+
+    sp = command("encode", _run_encode, _describe_stage, "sparse-code every chunk of data/NAME (resumes)")
+    _ws_name(sp)
+    sp.add_argument("--dictionary", help="dictionary id (default: the promoted one)")
+    _coder_options(sp, default=None)
+    sp.add_argument("--overwrite", action="store_true", help="replace codes made from other inputs")
+    _runner_options(sp)
+
+    sp = command("pool", _run_pool, _describe_stage, "pool the codes of data/NAME into per-record features (resumes)")
+    _ws_name(sp)
+    sp.add_argument("--dictionary", help="dictionary id (default: the promoted one)")
+    _pool_options(sp)
+    sp.add_argument("--overwrite", action="store_true", help="replace features made with other options")
+    _runner_options(sp)
+
+    sp = command("evaluate", _run_evaluate, _describe_evaluation,
+                 "score a linear classifier on the features against the raw records")
+    _ws_name(sp)
+    sp.add_argument("--dictionary", help="dictionary id (default: the promoted one)")
+    _evaluation_options(sp)
+
+    sp = command("nightly", _run_nightly, _describe_nightly,
+                 "train a candidate dictionary, encode, pool, evaluate, and promote it if it holds up")
+    _ws_name(sp)
+    _train_options(sp)
+    _pool_options(sp)
+    _evaluation_options(sp)
+    sp.add_argument("--metric", choices=("accuracy", "macro_f1"), default="accuracy",
+                    help="score compared by the promotion gate (default: %(default)s)")
+    sp.add_argument("--tolerance", type=float, default=0.01,
+                    help="promote unless the candidate scores worse than the promoted one by more than this (default: %(default)s)")
+    _runner_options(sp)
+
+    sp = command("show", _run_show, _describe_show, "list what a workspace holds")
+    sp.add_argument("workspace", help="workspace directory or URL")
+    return p
+
+
+def _ws_name(sp: argparse.ArgumentParser) -> None:
+    sp.add_argument("workspace", help="workspace directory or URL (memory://…, s3://…)")
+    sp.add_argument("name", help="name of the records array (data/NAME)")
+
+
+def _key_values(pairs: list[str]) -> dict:
+    """``key=value`` pairs; values parsed as JSON when they parse (numbers, booleans)."""
+    out = {}
+    for pair in pairs or []:
+        key, sep, text = pair.partition("=")
+        if not sep:
+            raise argparse.ArgumentTypeError(f"expected key=value, found {pair!r}")
+        try:
+            out[key] = json.loads(text)
+        except json.JSONDecodeError:
+            out[key] = text
+    return out
+
+
+def _coder_options(sp: argparse.ArgumentParser, default: str | None = "omp") -> None:
+    sp.add_argument("--coder", default=default,
+                    help="sparse coder by its trade name, e.g. omp (default: %s)"
+                    % (default or "the one the dictionary was trained with"))
+    sp.add_argument("--nonzero", type=int, help="nonzeros per patch for greedy coders (option n_nonzero)")
+    sp.add_argument("--coder-option", action="append", metavar="KEY=VALUE",
+                    help="any other option of the coder, repeatable (e.g. tol=0.01)")
+
+
+def _coder_params(args: argparse.Namespace) -> dict | None:
+    options = _key_values(args.coder_option)
+    if args.nonzero is not None:
+        options["n_nonzero"] = args.nonzero
+    return options or None
+
+
+def _train_options(sp: argparse.ArgumentParser) -> None:
+    sp.add_argument("--atoms", type=int, default=128, help="number of atoms k (default: %(default)s)")
+    sp.add_argument("--patch-size", type=int, nargs="+",
+                    help="patch length (1-D) or height width (images); whole record if omitted")
+    sp.add_argument("--stride", type=int, nargs="+", help="step between patches (default: the patch size)")
+    sp.add_argument("--method", default="online", help="dictionary learner (default: %(default)s)")
+    sp.add_argument("--learner-option", action="append", metavar="KEY=VALUE",
+                    help="any option of the learner, repeatable (e.g. n_passes=2)")
+    sp.add_argument("--sample", type=int, default=20_000, help="training patches sampled (default: %(default)s)")
+    sp.add_argument("--seed", type=int, default=0, help="seed (default: %(default)s)")
+    _coder_options(sp)
+
+
+def _train_params(args: argparse.Namespace) -> dict:
+    return dict(n_atoms=args.atoms, patch_size=_one_or_list(args.patch_size),
+                stride=_one_or_list(args.stride), method=args.method, coder=args.coder,
+                coder_options=_coder_params(args), learner_options=_key_values(args.learner_option) or None,
+                sample_patches=args.sample, seed=args.seed)
+
+
+def _one_or_list(values: list[int] | None) -> int | list[int] | None:
+    if values is None:
+        return None
+    return values[0] if len(values) == 1 else values
+
+
+def _pool_options(sp: argparse.ArgumentParser) -> None:
+    sp.add_argument("--reduce", choices=("max", "mean"), default="max",
+                    help="how each region's coefficients become one number (default: %(default)s)")
+    sp.add_argument("--no-split-sign", dest="split_sign", action="store_false",
+                    help="pool |z| instead of positive and negative parts separately")
+    sp.add_argument("--regions", type=int, nargs="+", default=[4],
+                    help="equal parts per spatial axis of the patch grid (default: 4)")
+
+
+def _pool_params(args: argparse.Namespace) -> dict:
+    return dict(reduce=args.reduce, split_sign=args.split_sign, regions=_one_or_list(args.regions))
+
+
+def _evaluation_options(sp: argparse.ArgumentParser) -> None:
+    sp.add_argument("--labels", help="labels array name (default: NAME)")
+    sp.add_argument("--test-fraction", type=float, default=0.25, help="held-out share (default: %(default)s)")
+    sp.add_argument("--max-rows", type=int, default=20_000,
+                    help="labelled rows used at most, stratified sample (default: %(default)s)")
+
+
+def _runner_options(sp: argparse.ArgumentParser) -> None:
+    sp.add_argument("--runner", choices=("threads", "processes", "dask"), default="threads",
+                    help="Prefect task runner (default: %(default)s)")
+    sp.add_argument("--workers", type=int, default=os.cpu_count() or 1,
+                    help="parallel workers (default: the number of cores, %(default)s)")
+    sp.add_argument("--dask-address", help="scheduler address of an existing Dask cluster")
+
+
+def _with_runner(flow, args: argparse.Namespace):
+    from atomline.flows.runners import task_runner
+
+    return flow.with_options(task_runner=task_runner(args.runner, args.workers, args.dask_address))
+
+
+# ---------------------------------------------------------------------------- commands
+def _run_add_records(args):
+    from atomline.stages.workspace import Workspace
+
+    ws = Workspace.open(args.workspace, create=True)
+    return ws.add_records(args.name, args.file, chunk_rows=args.chunk_rows, overwrite=args.overwrite)
+
+
+def _run_add_labels(args):
+    from atomline.stages.workspace import Workspace
+
+    return Workspace.open(args.workspace).add_labels(args.name, args.file, overwrite=args.overwrite)
+
+
+def _run_link(args):
+    from atomline.stages.workspace import Workspace
+
+    ws = Workspace.open(args.workspace, create=True)
+    return ws.link_records(args.name, args.url, args.path, overwrite=args.overwrite)
+
+
+def _run_train(args):
+    from atomline.flows import train_flow
+
+    return train_flow(args.workspace, args.name, **_train_params(args))
+
+
+def _run_encode(args):
+    from atomline.flows import encode_flow
+
+    with _progress(args.workspace, args.name, ("codes",), args.json):
+        return _with_runner(encode_flow, args)(
+            args.workspace, args.name, dict_id=args.dictionary, coder=args.coder,
+            coder_options=_coder_params(args), workers=args.workers, overwrite=args.overwrite)
+
+
+def _run_pool(args):
+    from atomline.flows import pool_flow
+
+    with _progress(args.workspace, args.name, ("features",), args.json):
+        return _with_runner(pool_flow, args)(args.workspace, args.name, dict_id=args.dictionary,
+                                             workers=args.workers, overwrite=args.overwrite,
+                                             **_pool_params(args))
+
+
+def _run_evaluate(args):
+    from atomline.flows import evaluate_flow
+
+    return evaluate_flow(args.workspace, args.name, dict_id=args.dictionary, labels=args.labels,
+                         test_fraction=args.test_fraction, max_rows=args.max_rows)
+
+
+def _run_nightly(args):
+    from atomline.flows import nightly_flow
+
+    with _progress(args.workspace, args.name, ("codes", "features"), args.json):
+        return _with_runner(nightly_flow, args)(
+            args.workspace, args.name, labels=args.labels, metric=args.metric,
+            tolerance=args.tolerance, test_fraction=args.test_fraction, max_rows=args.max_rows,
+            workers=args.workers, **_train_params(args), **_pool_params(args))
+
+
+def _run_show(args):
+    from atomline.stages.workspace import Workspace
+
+    return Workspace.open(args.workspace).summary()
+
+
+def _run_demo(args):
+    from atomline.flows import nightly_flow
+    from atomline.flows.demo import CLASS_NAMES, vibration_records
+    from atomline.stages.workspace import Workspace
+
+    started = time.perf_counter()
+    ws = Workspace.open(args.directory, create=True)
+    if "vibration" not in ws.root["data"]:
+        records, labels = vibration_records(args.records, seed=args.seed)
+        ws.add_records("vibration", records, chunk_rows=250)
+        ws.add_labels("vibration", labels)
+    with _progress(args.directory, "vibration", ("codes", "features"), args.json):
+        report = _with_runner(nightly_flow, args)(args.directory, "vibration", seed=args.seed,
+                                                  workers=args.workers, **DEMO_OPTIONS)
+    dictionary = ws.load_dictionary(report["candidate_id"])
+    report["dictionary"] = {k: dictionary.attrs[k] for k in ("n_atoms", "n_features", "method", "coder",
+                                                             "coder_options", "geometry")}
+    report["dictionary"]["coherence"] = dictionary.attrs["diagnostics"].get("coherence")
+    report["classes"] = list(CLASS_NAMES)
+    report["workspace"] = os.path.abspath(args.directory)
+    report["seconds"] = time.perf_counter() - started
+    return report
+
+
+# ---------------------------------------------------------------------------- reports
+def _describe_records(r: dict) -> str:
+    return (f"data/{r['name']}: {r['shape'][0]} records of shape {tuple(r['shape'][1:])}, {r['dtype']}, "
+            f"{r['n_chunks']} chunks of {r['chunk_rows']} rows, fingerprint {r['fingerprint']}")
+
+
+def _describe_stage(r: dict) -> str:
+    done = r.get("encoded", r.get("pooled"))
+    rate = r.get("records_per_second")
+    return (f"{r['output']}: {done} chunks written, {r['skipped']} already done (skipped), "
+            f"{r['records']} records" + (f", {rate:,.0f} records/s" if rate else ""))
+
+
+def _describe_evaluation(r: dict) -> str:
+    lines = [f"evaluation {r['run_id']} of dictionary {r['dict_id']} ({r['n_train']} train / {r['n_test']} test rows)",
+             f"  sparse features: accuracy {r['features']['accuracy']:.3f}, macro-F1 {r['features']['macro_f1']:.3f}"]
+    if "raw" in r:
+        lines.append(f"  raw records:     accuracy {r['raw']['accuracy']:.3f}, macro-F1 {r['raw']['macro_f1']:.3f}")
+    return "\n".join(lines)
+
+
+def _describe_nightly(r: dict) -> str:
+    from atomline.flows import OUTCOMES
+
+    cand = r["candidate"]
+    lines = [f"nightly outcome: {r['outcome'].upper()} — {OUTCOMES[r['outcome']]}",
+             f"candidate dictionary {r['candidate_id']} (previously promoted: {r['previous_id']})",
+             "  " + _describe_stage(r["encode"]), "  " + _describe_stage(r["pool"]),
+             _describe_evaluation(cand)]
+    if r.get("promoted"):
+        prev = r["promoted"]["features"]
+        lines.append(f"  previously promoted: accuracy {prev['accuracy']:.3f}, macro-F1 {prev['macro_f1']:.3f}")
+    lines.append(f"promoted dictionary now: {r['promoted_id']}")
+    return "\n".join(lines)
+
+
+def _describe_demo(r: dict) -> str:
+    d, cand, enc = r["dictionary"], r["candidate"], r["encode"]
+    patches = enc["records"] * _patches_per_record(d["geometry"])
+    rate = enc.get("records_per_second")
+    gain = 100 * (cand["features"]["accuracy"] - cand["raw"]["accuracy"])
+    return "\n".join([
+        "atomline demo — synthetic vibration records (invented data; see the README)",
+        f"  dictionary   {r['candidate_id']}: {d['n_atoms']} atoms of {d['n_features']} samples, "
+        f"learner {d['method']}, coder {d['coder']} {d['coder_options']}, coherence {d['coherence']:.3f}",
+        f"  encoded      {enc['records']} records ({patches:,} patches) in {enc['seconds']:.1f} s"
+        + (f" — {rate:,.0f} records/s" if rate else "") + f"; {enc['skipped']} chunks already done",
+        f"  classes      {', '.join(r['classes'])}",
+        f"  accuracy     raw samples {cand['raw']['accuracy']:.3f}  |  sparse features "
+        f"{cand['features']['accuracy']:.3f}  ({gain:+.1f} points, {cand['n_test']} test records)",
+        f"  outcome      {r['outcome']}; promoted dictionary: {r['promoted_id']}",
+        f"  outputs      {r['workspace']}  (atomline show {r['workspace']})",
+        f"  total time   {r['seconds']:.1f} s",
+        "  This is a screening aid for data work, not a maintenance or safety decision.",
+    ])
+
+
+def _patches_per_record(geometry: dict) -> int:
+    n = 1
+    for extent, size, stride in zip(geometry["record_shape"], geometry["size"], geometry["stride"]):
+        n *= (extent - size) // stride + 1
+    return n
+
+
+def _describe_show(r: dict) -> str:
+    lines = [f"workspace {r['url']} (layout {r['layout']}); promoted dictionary: {r['promoted']}"]
+    for name, info in r["records"].items():
+        lines.append(f"  data/{name}: {info['shape']} {info['dtype']}, {info['n_chunks']} chunks"
+                     + (", labelled" if info["labelled"] else ""))
+    for dict_id, info in r["dictionaries"].items():
+        lines.append(f"  dictionaries/{dict_id}: {info['n_atoms']} atoms, {info['method']}, {info['created']}")
+    for path, info in r["outputs"].items():
+        lines.append(f"  {path}: {info['chunks_done']}/{info['n_chunks']} chunks done")
+    lines.append(f"  evaluations: {r['evaluations']}")
+    return "\n".join(lines)
+
+
+# ---------------------------------------------------------------------------- progress
+class _progress:
+    """Show chunk progress by reading the outputs' done flags while a flow runs.
+
+    Progress comes from the workspace itself, so it is right whatever the runner (threads,
+    processes, a Dask cluster) and whichever process writes the chunks.
+    """
+
+    def __init__(self, url: str, records: str, kinds: tuple[str, ...], silent: bool):
+        self.url, self.records, self.kinds, self.silent = url, records, kinds, silent
+        self._stop = threading.Event()
+
+    def __enter__(self):
+        if self.silent or not sys.stderr.isatty():
+            return self
+        from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+
+        self._bar = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
+                             TimeElapsedColumn(), transient=False)
+        self._bar.start()
+        self._tasks: dict[str, int] = {}
+        self._thread = threading.Thread(target=self._poll, daemon=True)
+        self._thread.start()
+        return self
+
+    def _poll(self) -> None:
+        from atomline.stages.workspace import Workspace
+
+        while not self._stop.wait(1.0):
+            try:
+                ws = Workspace.open(self.url)
+                for kind in self.kinds:
+                    for dict_id in ws.root[kind].group_keys():
+                        path = f"{kind}/{dict_id}/{self.records}"
+                        if not ws.has_output(path):
+                            continue
+                        flags = ws.output(path).done_flags()
+                        if path not in self._tasks:
+                            label = "encoding" if kind == "codes" else "pooling"
+                            self._tasks[path] = self._bar.add_task(f"{label} {dict_id}", total=flags.size)
+                        self._bar.update(self._tasks[path], completed=int(flags.sum()))
+            except Exception:  # progress display must never break the run it watches
+                continue
+
+    def __exit__(self, *exc):
+        if hasattr(self, "_bar"):
+            self._stop.set()
+            self._thread.join()
+            self._bar.stop()
+        return False
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

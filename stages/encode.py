@@ -1,0 +1,193 @@
+"""The encode stage: sparse-code every patch of every record, chunk by chunk.
+
+Two steps, so that a flow can spread the work:
+
+* :func:`prepare_encode` creates (or reopens, to resume) ``codes/<dict-id>/<records>``
+  with one output chunk per input row chunk, and returns the chunks still to do;
+* :func:`encode_chunks` codes a batch of those chunks; many batches run in parallel,
+  each owning its chunks, and each chunk is written data first, done flag last.
+
+The codes of record ``i`` are rows ``i·P … (i+1)·P − 1`` (``P`` patches per record) of
+``index`` (int32), ``value`` (float32) and ``count`` (int32).
+
+``encode_task`` is :func:`encode_chunks` as a Prefect task.
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+from prefect import task
+from prefect.cache_policies import NO_CACHE
+from threadpoolctl import threadpool_limits
+
+from .coding import code, code_width, gram
+from .errors import NotFound, problem
+from .prep import Normaliser, PatchGeometry
+from .workspace import Workspace, fingerprint_params, iter_row_chunks
+
+__all__ = ["prepare_encode", "encode_chunks", "encode_task", "codes_path"]
+
+
+def codes_path(dict_id: str, records: str) -> str:
+    """Workspace path of the codes of ``records`` under dictionary ``dict_id``."""
+    return f"codes/{dict_id}/{records}"
+
+
+def prepare_encode(
+    workspace: Workspace | str,
+    records: str,
+    dict_id: str,
+    *,
+    coder: str | None = None,
+    coder_options: dict | None = None,
+    overwrite: bool = False,
+) -> dict:
+    """Create or reopen the codes output and list the chunks left to encode.
+
+    Parameters
+    ----------
+    workspace : Workspace or str
+    records : str
+        Name of the records array.
+    dict_id : str
+        A complete dictionary of the workspace.
+    coder : str, optional
+        Coder name; by default the one the dictionary was trained with.
+    coder_options : dict, optional
+        Its options; by default the training ones (when ``coder`` is also default).
+    overwrite : bool
+        Replace codes made from other inputs or parameters.
+
+    Returns
+    -------
+    dict
+        ``{"output", "n_chunks", "pending", "coder", "coder_options", "width"}``
+    """
+    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    arr = ws.records(records)
+    stored = ws.load_dictionary(dict_id)
+    geometry = PatchGeometry.from_attrs(stored.attrs["geometry"])
+    if tuple(arr.shape[1:]) != geometry.record_shape:
+        raise NotFound(problem(f"dictionary {dict_id}", f"records shaped {geometry.record_shape}",
+                               f"records {records!r} shaped {tuple(arr.shape[1:])}",
+                               "Train a dictionary on records of this shape."))
+    if coder is None:
+        coder = stored.attrs["coder"]
+        coder_options = stored.attrs["coder_options"] if coder_options is None else coder_options
+    coder_options = dict(coder_options or {})
+    width = code_width(coder, stored.atoms.shape[0], **coder_options)
+    P = geometry.patches_per_record
+    params = {"coder": coder, "coder_options": coder_options}
+    attrs = {
+        "records": records,
+        "dict_id": dict_id,
+        "records_fingerprint": ws.records_fingerprint(records),
+        "dictionary_fingerprint": stored.fingerprint,
+        "params": params,
+        "patches_per_record": P,
+        "record_chunk_rows": int(arr.chunks[0]),
+        "geometry": geometry.to_attrs(),
+        "n_atoms": int(stored.atoms.shape[0]),
+        "width": width,
+    }
+    attrs["fingerprint"] = fingerprint_params(
+        {k: attrs[k] for k in ("records_fingerprint", "dictionary_fingerprint", "params",
+                               "record_chunk_rows")}
+    )
+    out = ws.create_output(
+        codes_path(dict_id, records),
+        n_rows=arr.shape[0] * P,
+        chunk_rows=int(arr.chunks[0]) * P,
+        arrays={"index": ((width,), "int32"), "value": ((width,), "float32"),
+                "count": ((), "int32")},
+        attrs=attrs,
+        overwrite=overwrite,
+    )
+    return {"output": codes_path(dict_id, records), "n_chunks": out.n_chunks,
+            "pending": out.pending(), "coder": coder, "coder_options": coder_options,
+            "width": width}
+
+
+def encode_chunks(
+    workspace: Workspace | str,
+    records: str,
+    dict_id: str,
+    chunks: list[int],
+    *,
+    blas_threads: int | None = None,
+    storage_options: dict | None = None,
+) -> dict:
+    """Encode a batch of row chunks into the prepared codes output.
+
+    Chunks already marked done are skipped, so a retried or rerun batch resumes.
+
+    Parameters
+    ----------
+    workspace : Workspace or str
+    records : str
+    dict_id : str
+    chunks : list of int
+        Row-chunk numbers of the records array (each owned by this call alone).
+    blas_threads : int, optional
+        Limit BLAS threads while coding (so workers × threads stay within the cores).
+    storage_options : dict, optional
+        For opening ``workspace`` when it is a URL.
+
+    Returns
+    -------
+    dict
+        ``{"encoded": chunks done now, "skipped": chunks already done,
+        "records": records coded, "patches": patches coded, "seconds": wall time}``
+    """
+    start = time.perf_counter()
+    ws = (workspace if isinstance(workspace, Workspace)
+          else Workspace.open(workspace, storage_options=storage_options))
+    out = ws.output(codes_path(dict_id, records))
+    attrs = out.attrs
+    arr = ws.records(records)
+    stored = ws.load_dictionary(dict_id)
+    if stored.fingerprint != attrs["dictionary_fingerprint"]:
+        raise NotFound(problem(codes_path(dict_id, records),
+                               f"dictionary fingerprint {attrs['dictionary_fingerprint']}",
+                               stored.fingerprint, "Run prepare_encode with overwrite=True."))
+    geometry = PatchGeometry.from_attrs(attrs["geometry"])
+    normaliser = Normaliser.from_stored(stored.attrs["preprocessing"], stored.arrays)
+    coder, options = attrs["params"]["coder"], dict(attrs["params"]["coder_options"])
+    atoms = stored.atoms.astype(arr.dtype)
+    if coder == "omp":
+        options.setdefault("gram", gram(atoms))  # the same for every chunk: compute once
+    P = attrs["patches_per_record"]
+    width = attrs["width"]
+    encoded = skipped = n_records = 0
+    with threadpool_limits(limits=blas_threads):
+        for c, rows in iter_row_chunks(arr, chunks):
+            if out.is_done(c):
+                skipped += 1
+                continue
+            block = np.asarray(arr[rows])
+            patches = normaliser.apply(geometry.extract(block))
+            codes = code(patches, atoms, coder, **options)
+            out.commit(c, slice(rows.start * P, rows.stop * P), {
+                "index": _pad(codes.index, width, -1).astype(np.int32),
+                "value": _pad(codes.value, width, 0).astype(np.float32),
+                "count": codes.count.astype(np.int32),
+            })
+            encoded += 1
+            n_records += block.shape[0]
+    return {"encoded": encoded, "skipped": skipped, "records": n_records,
+            "patches": n_records * P, "seconds": time.perf_counter() - start}
+
+
+def _pad(a: np.ndarray, width: int, fill: float) -> np.ndarray:
+    """Widen a (rows, q) slot array to ``width`` slots."""
+    if a.shape[1] == width:
+        return a
+    out = np.full((a.shape[0], width), fill, dtype=a.dtype)
+    out[:, : a.shape[1]] = a
+    return out
+
+
+#: The encode stage (one batch of chunks) as a Prefect task.
+encode_task = task(encode_chunks, name="encode-chunks", cache_policy=NO_CACHE, retries=2)

@@ -1,0 +1,165 @@
+"""The train stage: learn a dictionary from a sample of an archive's patches.
+
+``train_dictionary(workspace, records, ...)`` draws a seeded uniform sample of records,
+cuts them into patches, fits the preprocessing, runs a learner, and stores the result under
+``dictionaries/<id>``. The id is derived from everything the dictionary is made from
+(data fingerprint, geometry, learner, coder, seed), so a rerun with the same inputs finds
+the finished dictionary instead of training again.
+
+``train_task`` is the same function as a Prefect task.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+from prefect import task
+from prefect.cache_policies import NO_CACHE
+
+from .errors import InputError, problem
+from .learning import learn
+from .prep import Normaliser, PatchGeometry
+from .workspace import Workspace, fingerprint_params, iter_row_chunks
+
+__all__ = ["train_dictionary", "train_task"]
+
+
+def train_dictionary(
+    workspace: Workspace | str,
+    records: str,
+    *,
+    n_atoms: int = 128,
+    patch_size: int | tuple[int, ...] | None = None,
+    stride: int | tuple[int, ...] | None = None,
+    method: str = "online",
+    coder: str = "omp",
+    coder_options: dict | None = None,
+    learner_options: dict | None = None,
+    preprocessing: dict | None = None,
+    sample_patches: int = 20_000,
+    seed: int = 0,
+    dict_id: str | None = None,
+) -> dict:
+    """Train a dictionary on a sample of ``data/<records>`` and store it.
+
+    Parameters
+    ----------
+    workspace : Workspace or str
+        The workspace or its URL.
+    records : str
+        Name of the records array.
+    n_atoms : int
+        ``k``.
+    patch_size, stride : int or tuple, optional
+        Patch geometry (see :class:`~atomline.stages.prep.PatchGeometry`); the whole
+        record is one patch when ``patch_size`` is ``None``.
+    method : str
+        Learner name (``atomline.stages.learning.METHODS``).
+    coder : str
+        Coder used inside the learner and, by default, by the encode stage.
+    coder_options : dict, optional
+        Its options; default ``{"n_nonzero": 5}``.
+    learner_options : dict, optional
+        Extra options of the learner.
+    preprocessing : dict, optional
+        Fields of :class:`~atomline.stages.prep.Normaliser`.
+    sample_patches : int
+        Patches in the training sample.
+    seed : int
+        Seeds the sample and the learner.
+    dict_id : str, optional
+        Id to store under; derived from the inputs by default.
+
+    Returns
+    -------
+    dict
+        Manifest: ``dict_id``, ``reused`` (True when an identical dictionary existed),
+        ``n_atoms``, ``n_features``, ``sample_patches``, ``diagnostics`` summary.
+    """
+    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    arr = ws.records(records)
+    geometry = PatchGeometry.for_records(arr.shape[1:], patch_size, stride)
+    coder_options = {"n_nonzero": 5} if coder_options is None else dict(coder_options)
+    learner_options = dict(learner_options or {})
+    normaliser = Normaliser(**(preprocessing or {}))
+    if sample_patches < n_atoms:
+        raise InputError(problem("sample_patches", f"at least n_atoms = {n_atoms}",
+                                 str(sample_patches), "Sample more patches or ask for fewer atoms."))
+    recipe = {
+        "records_fingerprint": ws.records_fingerprint(records),
+        "geometry": geometry.to_attrs(),
+        "n_atoms": int(n_atoms),
+        "method": method,
+        "coder": coder,
+        "coder_options": coder_options,
+        "learner_options": learner_options,
+        "preprocessing": normaliser.to_attrs(),
+        "sample_patches": int(sample_patches),
+        "seed": int(seed),
+    }
+    dict_id = dict_id or f"d-{fingerprint_params(recipe)[:12]}"
+    if ws.has_dictionary(dict_id):
+        stored = ws.load_dictionary(dict_id)
+        return _manifest(stored.attrs, dict_id, reused=True)
+
+    sample = _sample_patches(arr, geometry, sample_patches, seed)
+    learned = learn(
+        sample, n_atoms, method, preprocessing=normaliser, coder=coder,
+        coder_options=coder_options, seed=seed, **learner_options,
+    )
+    attrs = dict(
+        recipe,
+        records=records,
+        n_features=geometry.n_features,
+        preprocessing=learned.preprocessing.to_attrs(),
+        params=learned.params,
+        diagnostics=learned.diagnostics,
+    )
+    stored = ws.save_dictionary(dict_id, learned.atoms, attrs, learned.preprocessing.arrays())
+    return _manifest(stored.attrs, dict_id, reused=False)
+
+
+def _manifest(attrs: dict, dict_id: str, reused: bool) -> dict:
+    diag = attrs.get("diagnostics", {})
+    objective = diag.get("objective") or [None]
+    return {
+        "dict_id": dict_id,
+        "reused": reused,
+        "method": attrs["method"],
+        "n_atoms": attrs["n_atoms"],
+        "n_features": attrs["n_features"],
+        "sample_patches": attrs["sample_patches"],
+        "coherence": diag.get("coherence"),
+        "final_objective": objective[-1],
+    }
+
+
+def _sample_patches(arr: Any, geometry: PatchGeometry, n_patches: int, seed: int) -> np.ndarray:
+    """Draw ``n_patches`` patches uniformly over the archive, reading only needed chunks.
+
+    Records are chosen first (seeded, without replacement, independent of the chunking),
+    then patches among theirs; the result depends on the seed and the data only.
+
+    Returns
+    -------
+    ndarray of shape (n_patches, d), float64
+    """
+    rng = np.random.default_rng(seed)
+    n = arr.shape[0]
+    P = geometry.patches_per_record
+    n_records = min(n, -(-n_patches // P) * 2)  # twice the minimum, for patch diversity
+    chosen = np.sort(rng.choice(n, size=n_records, replace=False))
+    parts = []
+    for _, rows in iter_row_chunks(arr):
+        inside = chosen[(chosen >= rows.start) & (chosen < rows.stop)]
+        if inside.size:
+            block = np.asarray(arr[rows.start : rows.stop])[inside - rows.start]
+            parts.append(geometry.extract(block))
+    patches = np.concatenate(parts)
+    keep = np.sort(rng.choice(patches.shape[0], size=min(n_patches, patches.shape[0]), replace=False))
+    return patches[keep].astype(np.float64)
+
+
+#: The train stage as a Prefect task (no result caching: arguments are names only).
+train_task = task(train_dictionary, name="train-dictionary", cache_policy=NO_CACHE)

@@ -1,0 +1,724 @@
+"""The workspace: one Zarr v3 group that holds everything a pipeline produces.
+
+This is the only module that knows the layout::
+
+    data/<name>               records (n, d), (n, L) or (n, H, W[, C]); float32/float64
+                              (or a group that links to an array in another store)
+    labels/<name>             (n,) integer class labels
+    dictionaries/<id>/        atoms (k, d) + preprocessing arrays; attrs describe it
+    codes/<dict-id>/<name>/   index (rows, q) int32, value (rows, q) float32,
+                              count (rows,) int32, done (n_chunks,) uint8
+    features/<dict-id>/<name>/values (n, F) float32, done (n_chunks,) uint8
+    evaluations/<run-id>/     one group per evaluation (append-only)
+
+The root group's attributes carry the layout version and the pointer to the promoted
+dictionary. A whole run is one URL: a local directory, or any fsspec URL such as
+``memory://name`` or ``s3://bucket/prefix``.
+
+Chunk protocol (see :class:`Output`): work is cut along the records' row chunks; a task
+owns whole output chunks; it writes the data of a chunk first and the chunk's done flag
+last, and a rerun skips chunks whose flag is set.
+
+Example::
+
+    >>> import numpy as np
+    >>> from atomline.stages.workspace import Workspace
+    >>> ws = Workspace.open("memory://doc-example", create=True)
+    >>> info = ws.add_records("signals", np.zeros((10, 32), dtype=np.float32), chunk_rows=4)
+    >>> info["n_chunks"], ws.records("signals").shape
+    (3, (10, 32))
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import json
+import os
+from dataclasses import dataclass
+from typing import Any, Iterator
+
+import numpy as np
+import zarr
+
+from .errors import FingerprintMismatch, InputError, LayoutError, NotFound, OutputExists, problem
+
+__all__ = ["Workspace", "Output", "StoredDictionary", "LAYOUT_VERSION", "fingerprint_params"]
+
+#: Version of the layout above. A store with a larger number was written by a newer
+#: atomline and is refused rather than misread.
+LAYOUT_VERSION = 1
+_MARK = "atomline"
+_TARGET_CHUNK_BYTES = 4 * 2**20  # ~4 MiB of input per row chunk unless told otherwise
+
+
+def _package_version() -> str:
+    try:
+        from importlib.metadata import version
+
+        return version("atomline")
+    except Exception:  # running from a source tree that was never installed
+        return "unknown"
+
+
+def fingerprint_params(params: dict) -> str:
+    """Stable digest of a parameter dictionary (plain JSON types).
+
+    Parameters
+    ----------
+    params : dict
+
+    Returns
+    -------
+    str
+        16 hex digits of the SHA-256 of the canonical JSON form.
+    """
+    text = json.dumps(params, sort_keys=True, separators=(",", ":"), default=str)
+    return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+def _now() -> str:
+    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+
+
+def _check_name(name: str, what: str) -> str:
+    """Names become path segments: refuse anything that could escape its folder."""
+    if (
+        not isinstance(name, str)
+        or not name
+        or name in {".", ".."}
+        or any(c in name for c in "/\\\0")
+        or name.startswith(".")
+    ):
+        raise InputError(problem(what, "a plain name (letters, digits, '-', '_')", repr(name),
+                                 "Choose a name without slashes or leading dots."))
+    return name
+
+
+@dataclass(frozen=True)
+class StoredDictionary:
+    """A dictionary read back from a workspace.
+
+    Attributes
+    ----------
+    dict_id : str
+    atoms : ndarray of shape (k, d), float64
+    attrs : dict
+        Everything recorded with it (method, parameters, seed, geometry, fingerprints,
+        diagnostics, preprocessing, created time, package version).
+    arrays : dict of str to ndarray
+        Preprocessing arrays stored beside the atoms.
+    """
+
+    dict_id: str
+    atoms: np.ndarray
+    attrs: dict
+    arrays: dict
+
+    @property
+    def fingerprint(self) -> str:
+        """Digest of the atoms and their preprocessing."""
+        return self.attrs["fingerprint"]
+
+
+class Output:
+    """A chunked output under the chunk protocol: data arrays plus one done flag per chunk.
+
+    Parameters
+    ----------
+    group : zarr.Group
+        The output's group; holds the data arrays and ``done`` (n_chunks,) uint8.
+    """
+
+    def __init__(self, group: zarr.Group):
+        self.group = group
+        self._done = group["done"]
+
+    @property
+    def attrs(self) -> dict:
+        """The output's attributes (fingerprints, parameters, geometry)."""
+        return dict(self.group.attrs)
+
+    @property
+    def n_chunks(self) -> int:
+        """Number of row chunks (and of done flags)."""
+        return int(self._done.shape[0])
+
+    def done_flags(self) -> np.ndarray:
+        """ndarray of shape (n_chunks,), bool: which chunks are finished."""
+        return self._done[:].astype(bool)
+
+    def pending(self) -> list[int]:
+        """Chunk numbers still to do, in order."""
+        return [int(c) for c in np.flatnonzero(~self.done_flags())]
+
+    def is_done(self, chunk: int) -> bool:
+        """Whether chunk ``chunk`` is finished."""
+        return bool(self._done[chunk])
+
+    def commit(self, chunk: int, rows: slice, data: dict[str, np.ndarray]) -> None:
+        """Write one chunk's data, then its done flag (the flag is always last).
+
+        Parameters
+        ----------
+        chunk : int
+            Chunk number.
+        rows : slice
+            Rows of every data array that the chunk owns (whole Zarr chunks).
+        data : dict of str to ndarray
+            One entry per data array of the output.
+        """
+        for name, values in data.items():
+            self.group[name][rows] = values
+        self._done[chunk] = 1
+
+    @property
+    def complete(self) -> bool:
+        """Whether every chunk is finished."""
+        return bool(self.done_flags().all())
+
+
+class Workspace:
+    """An atomline workspace on any Zarr store.
+
+    Use :meth:`open`; the constructor takes an already opened root group.
+    """
+
+    def __init__(self, root: zarr.Group, url: str, storage_options: dict | None = None):
+        self.root = root
+        self.url = url
+        self.storage_options = storage_options
+
+    # ------------------------------------------------------------------ opening
+    @classmethod
+    def open(
+        cls,
+        url: str | os.PathLike,
+        *,
+        create: bool = False,
+        storage_options: dict | None = None,
+    ) -> "Workspace":
+        """Open a workspace, or create one.
+
+        Parameters
+        ----------
+        url : str or path
+            Local directory or fsspec URL (``memory://…``, ``s3://…``).
+        create : bool
+            Create an empty workspace if none is there (an existing one is opened).
+        storage_options : dict, optional
+            Passed to fsspec (credentials, endpoint). Never written into the workspace.
+
+        Returns
+        -------
+        Workspace
+
+        Raises
+        ------
+        LayoutError
+            The store holds something that is not an atomline workspace, or a layout
+            version this atomline does not know.
+        NotFound
+            No workspace at ``url`` and ``create`` is false.
+        """
+        url = os.fspath(url)
+        kwargs = {"storage_options": storage_options} if storage_options else {}
+        try:
+            root = zarr.open_group(store=url, mode="r+", **kwargs)
+        except (FileNotFoundError, zarr.errors.GroupNotFoundError) as exc:
+            if not create:
+                raise NotFound(problem(f"workspace {url}", "an atomline workspace",
+                                       "nothing there",
+                                       "Create one first (atomline add-records or demo).")) from exc
+            if not _is_empty_place(url, storage_options):
+                raise LayoutError(problem(f"workspace {url}", "an empty place or a workspace",
+                                          "other files there",
+                                          "Choose a new directory or URL.")) from exc
+            root = zarr.open_group(store=url, mode="a", zarr_format=3, **kwargs)
+            root.attrs[_MARK] = {"layout": LAYOUT_VERSION, "promoted": None,
+                                 "created": _now(), "version": _package_version()}
+            for top in ("data", "labels", "dictionaries", "codes", "features", "evaluations"):
+                root.require_group(top)
+            return cls(root, url, storage_options)
+        mark = root.attrs.get(_MARK)
+        if not isinstance(mark, dict) or not isinstance(mark.get("layout"), int):
+            raise LayoutError(problem(f"workspace {url}", f"a root attribute '{_MARK}' with a layout number",
+                                      "a Zarr group written by something else",
+                                      "Point atomline at its own workspace; link foreign arrays with link_records."))
+        if mark["layout"] > LAYOUT_VERSION:
+            raise LayoutError(problem(f"workspace {url}", f"layout version ≤ {LAYOUT_VERSION}",
+                                      f"version {mark['layout']}",
+                                      "Upgrade atomline to read this workspace."))
+        return cls(root, url, storage_options)
+
+    def _mark(self) -> dict:
+        return dict(self.root.attrs[_MARK])
+
+    # ------------------------------------------------------------------ records
+    def add_records(
+        self,
+        name: str,
+        source: np.ndarray | str | os.PathLike,
+        *,
+        chunk_rows: int | None = None,
+        overwrite: bool = False,
+    ) -> dict:
+        """Copy records into ``data/<name>``, chunk by chunk.
+
+        Parameters
+        ----------
+        name : str
+        source : ndarray of shape (n, ...) or path to a ``.npy`` file
+            A ``.npy`` file is memory-mapped and streamed, so it may exceed memory.
+        chunk_rows : int, optional
+            Rows per Zarr chunk; by default about 4 MiB of data per chunk.
+        overwrite : bool
+            Replace an existing array of that name.
+
+        Returns
+        -------
+        dict
+            ``{"name", "shape", "dtype", "chunk_rows", "n_chunks", "fingerprint"}``
+        """
+        _check_name(name, "records name")
+        if isinstance(source, (str, os.PathLike)):
+            source = np.load(os.fspath(source), mmap_mode="r", allow_pickle=False)
+        arr = source
+        check_records(arr, f"records {name!r}")
+        path = f"data/{name}"
+        self._refuse_existing(path, overwrite)
+        rows = chunk_rows or _default_chunk_rows(arr.shape, arr.dtype)
+        z = self.root.create_array(path, shape=arr.shape, chunks=(rows,) + arr.shape[1:],
+                                   dtype=arr.dtype, overwrite=True)
+        digest = _Digest(arr.shape, arr.dtype)
+        for start in range(0, arr.shape[0], rows):
+            block = np.asarray(arr[start : start + rows])
+            check_finite(block, f"records {name!r}", start)
+            z[start : start + block.shape[0]] = block
+            digest.update(block)
+        z.attrs["fingerprint"] = digest.hexdigest()
+        return self.describe_records(name)
+
+    def link_records(self, name: str, url: str, path: str = "", *, overwrite: bool = False,
+                     storage_options: dict | None = None) -> dict:
+        """Use an existing Zarr array of another store as records, without copying.
+
+        The link (URL and array path, never credentials) is kept in ``data/<name>``; the
+        fingerprint is computed once now, in one streaming pass.
+
+        Parameters
+        ----------
+        name : str
+        url : str
+            Store holding the array (directory or fsspec URL).
+        path : str
+            Path of the array inside that store ("" when the store is the array).
+        storage_options : dict, optional
+            For the linked store; used now and not persisted (pass them again later
+            through :meth:`open`'s ``storage_options`` if the protocols match).
+
+        Returns
+        -------
+        dict
+            As :meth:`add_records`.
+        """
+        _check_name(name, "records name")
+        arr = _open_array(url, path, storage_options)
+        check_records(arr, f"linked array {url}:{path}")
+        target = f"data/{name}"
+        self._refuse_existing(target, overwrite)
+        digest = _Digest(arr.shape, arr.dtype)
+        rows = arr.chunks[0]
+        for start in range(0, arr.shape[0], rows):
+            block = arr[start : start + rows]
+            check_finite(block, f"linked array {url}:{path}", start)
+            digest.update(block)
+        g = self.root.create_group(target, overwrite=True)
+        g.attrs.update({"link": {"url": str(url), "path": str(path)},
+                        "fingerprint": digest.hexdigest(),
+                        "shape": list(arr.shape), "dtype": str(arr.dtype)})
+        return self.describe_records(name)
+
+    def records(self, name: str) -> zarr.Array:
+        """The records array ``data/<name>`` (following a link), validated.
+
+        Returns
+        -------
+        zarr.Array of shape (n, ...)
+        """
+        node = self._node(f"data/{_check_name(name, 'records name')}", "records")
+        if isinstance(node, zarr.Group):
+            link = node.attrs.get("link")
+            if not isinstance(link, dict):
+                raise LayoutError(problem(f"data/{name}", "an array or a link", "a plain group",
+                                          "Re-add the records."))
+            arr = _open_array(link["url"], link["path"], self.storage_options)
+            if list(arr.shape) != node.attrs["shape"] or str(arr.dtype) != node.attrs["dtype"]:
+                raise FingerprintMismatch(problem(
+                    f"linked records {name!r}", f"shape {node.attrs['shape']} {node.attrs['dtype']}",
+                    f"{list(arr.shape)} {arr.dtype}", "The linked array changed: link it again."))
+        else:
+            arr = node
+        check_records(arr, f"records {name!r}")
+        return arr
+
+    def records_fingerprint(self, name: str) -> str:
+        """Fingerprint of ``data/<name>`` recorded when it was added or linked."""
+        return self._node(f"data/{name}", "records").attrs["fingerprint"]
+
+    def describe_records(self, name: str) -> dict:
+        """Plain-JSON facts about ``data/<name>``."""
+        arr = self.records(name)
+        return {"name": name, "shape": list(arr.shape), "dtype": str(arr.dtype),
+                "chunk_rows": int(arr.chunks[0]), "n_chunks": int(arr.cdata_shape[0]),
+                "fingerprint": self.records_fingerprint(name)}
+
+    # ------------------------------------------------------------------ labels
+    def add_labels(self, name: str, labels: np.ndarray | str | os.PathLike, *,
+                   overwrite: bool = False) -> dict:
+        """Store integer class labels for the records of the same name.
+
+        Parameters
+        ----------
+        name : str
+            The records they label (``data/<name>`` must exist).
+        labels : ndarray of shape (n,) or path to a ``.npy`` file
+            Integer labels, one per record.
+
+        Returns
+        -------
+        dict
+            ``{"name", "n", "classes"}``
+        """
+        _check_name(name, "labels name")
+        if isinstance(labels, (str, os.PathLike)):
+            labels = np.load(os.fspath(labels), allow_pickle=False)
+        labels = np.asarray(labels)
+        n = self.records(name).shape[0]
+        if labels.ndim != 1 or labels.dtype.kind not in "iu":
+            raise InputError(problem(f"labels {name!r}", "a 1-D integer array",
+                                     f"shape {labels.shape}, dtype {labels.dtype}",
+                                     "Encode classes as integers 0..C-1."))
+        if labels.shape[0] != n:
+            raise InputError(problem(f"labels {name!r}", f"{n} labels (one per record)",
+                                     f"{labels.shape[0]}", "Pass one label per record."))
+        path = f"labels/{name}"
+        self._refuse_existing(path, overwrite)
+        self.root.create_array(path, data=labels.astype(np.int64), overwrite=True)
+        return {"name": name, "n": int(n), "classes": sorted(int(c) for c in np.unique(labels))}
+
+    def labels(self, name: str) -> np.ndarray:
+        """ndarray of shape (n,), int64: the labels of ``data/<name>``."""
+        return np.asarray(self._node(f"labels/{name}", "labels")[:])
+
+    def has_labels(self, name: str) -> bool:
+        """Whether ``labels/<name>`` exists."""
+        return f"labels/{name}" in self.root
+
+    # ------------------------------------------------------------------ dictionaries
+    def save_dictionary(self, dict_id: str, atoms: np.ndarray, attrs: dict,
+                        arrays: dict[str, np.ndarray] | None = None) -> StoredDictionary:
+        """Store a dictionary; it counts as complete only once its attributes are written.
+
+        Parameters
+        ----------
+        dict_id : str
+        atoms : ndarray of shape (k, d)
+        attrs : dict
+            Plain JSON: method, params, seed, geometry, preprocessing, fingerprints,
+            diagnostics. ``created``, ``version`` and ``fingerprint`` are added.
+        arrays : dict of str to ndarray, optional
+            Preprocessing arrays (mean, whitening, …).
+
+        Returns
+        -------
+        StoredDictionary
+        """
+        _check_name(dict_id, "dictionary id")
+        path = f"dictionaries/{dict_id}"
+        if path in self.root and self.root[path].attrs.get("complete"):
+            raise OutputExists(problem(path, "a new dictionary id", "a finished dictionary",
+                                       "Use another id, or reuse the stored one."))
+        g = self.root.create_group(path, overwrite=True)
+        atoms = np.ascontiguousarray(atoms, dtype=np.float64)
+        g.create_array("atoms", data=atoms)
+        arrays = arrays or {}
+        for key, value in arrays.items():
+            g.create_array(f"prep_{_check_name(key, 'array name')}", data=np.asarray(value))
+        digest = hashlib.sha256(atoms.tobytes())
+        for key in sorted(arrays):
+            digest.update(np.ascontiguousarray(arrays[key]).tobytes())
+        digest.update(json.dumps(attrs.get("preprocessing", {}), sort_keys=True).encode())
+        full = dict(attrs, fingerprint=digest.hexdigest()[:16], created=_now(),
+                    version=_package_version(), prep_arrays=sorted(arrays))
+        g.attrs.update(_plain(full))
+        g.attrs["complete"] = True  # last: a crash before this leaves no usable dictionary
+        return self.load_dictionary(dict_id)
+
+    def load_dictionary(self, dict_id: str) -> StoredDictionary:
+        """Read a complete dictionary.
+
+        Returns
+        -------
+        StoredDictionary
+        """
+        g = self._node(f"dictionaries/{_check_name(dict_id, 'dictionary id')}", "dictionary")
+        attrs = dict(g.attrs)
+        if not attrs.get("complete"):
+            raise NotFound(problem(f"dictionaries/{dict_id}", "a complete dictionary",
+                                   "one whose training did not finish",
+                                   "Run the train flow again; it resumes."))
+        arrays = {k: np.asarray(g[f"prep_{k}"][:]) for k in attrs.get("prep_arrays", [])}
+        return StoredDictionary(dict_id, np.asarray(g["atoms"][:]), attrs, arrays)
+
+    def has_dictionary(self, dict_id: str) -> bool:
+        """Whether a complete dictionary ``dict_id`` exists."""
+        path = f"dictionaries/{dict_id}"
+        return path in self.root and bool(self.root[path].attrs.get("complete"))
+
+    def dictionary_ids(self) -> list[str]:
+        """Ids of the complete dictionaries, oldest first."""
+        ids = [k for k in self.root["dictionaries"].group_keys() if self.has_dictionary(k)]
+        return sorted(ids, key=lambda k: self.root[f"dictionaries/{k}"].attrs.get("created", ""))
+
+    @property
+    def promoted(self) -> str | None:
+        """Id of the promoted dictionary, or ``None``."""
+        return self._mark().get("promoted")
+
+    def promote(self, dict_id: str) -> None:
+        """Point the workspace at ``dict_id`` (which must be complete)."""
+        self.load_dictionary(dict_id)
+        mark = self._mark()
+        mark["promoted"] = dict_id
+        self.root.attrs[_MARK] = mark
+
+    # ------------------------------------------------------------------ outputs
+    def create_output(self, path: str, *, n_rows: int, chunk_rows: int,
+                      arrays: dict[str, tuple[tuple[int, ...], str]], attrs: dict,
+                      overwrite: bool = False) -> Output:
+        """Create (or reopen for resuming) a chunked output.
+
+        An output that exists with the same ``attrs["fingerprint"]`` is reopened so a rerun
+        resumes it; one with another fingerprint is refused unless ``overwrite``.
+
+        Parameters
+        ----------
+        path : str
+            Group path, e.g. ``codes/<dict-id>/<name>``.
+        n_rows : int
+            Rows of every data array.
+        chunk_rows : int
+            Rows per chunk (one done flag each).
+        arrays : dict of str to (tail shape, dtype)
+            Data arrays: each has shape ``(n_rows, *tail)``.
+        attrs : dict
+            Plain JSON; must contain ``fingerprint``.
+        overwrite : bool
+            Replace an existing output made from other inputs, or a finished one.
+
+        Returns
+        -------
+        Output
+        """
+        if path in self.root:
+            old = Output(self.root[path])
+            same = old.attrs.get("fingerprint") == attrs["fingerprint"]
+            if same and not overwrite:
+                return old
+            if not overwrite:
+                raise FingerprintMismatch(problem(
+                    path, f"an output made from the same inputs (fingerprint {attrs['fingerprint']})",
+                    f"one made from other inputs (fingerprint {old.attrs.get('fingerprint')})",
+                    "Pass overwrite=True (--overwrite) to replace it, or write elsewhere."))
+        g = self.root.create_group(path, overwrite=True)
+        for name, (tail, dtype) in arrays.items():
+            fill = -1 if name == "index" else 0
+            g.create_array(name, shape=(n_rows, *tail), chunks=(chunk_rows, *tail),
+                           dtype=dtype, fill_value=fill)
+        n_chunks = -(-n_rows // chunk_rows)
+        g.create_array("done", shape=(n_chunks,), chunks=(1,), dtype="u1", fill_value=0)
+        g.attrs.update(_plain(dict(attrs, created=_now(), version=_package_version())))
+        return Output(g)
+
+    def output(self, path: str) -> Output:
+        """Open an existing output."""
+        return Output(self._node(path, "output"))
+
+    def has_output(self, path: str) -> bool:
+        """Whether an output group exists at ``path``."""
+        return path in self.root and "done" in self.root[path]
+
+    # ------------------------------------------------------------------ evaluations
+    def append_evaluation(self, attrs: dict, arrays: dict[str, np.ndarray]) -> str:
+        """Add one evaluation; evaluations are never rewritten.
+
+        Returns
+        -------
+        str
+            The new run id.
+        """
+        stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y%m%dT%H%M%S%f")
+        run_id = f"e{stamp}-{os.urandom(3).hex()}"
+        g = self.root.create_group(f"evaluations/{run_id}")
+        for key, value in arrays.items():
+            g.create_array(key, data=np.asarray(value))
+        g.attrs.update(_plain(dict(attrs, run_id=run_id, created=_now())))
+        g.attrs["complete"] = True
+        return run_id
+
+    def evaluations(self) -> list[dict]:
+        """Attributes of every complete evaluation, oldest first."""
+        out = []
+        for key in self.root["evaluations"].group_keys():
+            attrs = dict(self.root[f"evaluations/{key}"].attrs)
+            if attrs.get("complete"):
+                out.append(attrs)
+        return sorted(out, key=lambda a: a["run_id"])
+
+    def evaluation_arrays(self, run_id: str) -> dict[str, np.ndarray]:
+        """The arrays of one evaluation (confusion matrices, …)."""
+        g = self._node(f"evaluations/{run_id}", "evaluation")
+        return {k: np.asarray(g[k][:]) for k in g.array_keys()}
+
+    # ------------------------------------------------------------------ listing
+    def summary(self) -> dict:
+        """What the workspace holds, as plain JSON."""
+        data = {}
+        for name in self.root["data"].keys():
+            data[name] = self.describe_records(name)
+            data[name]["labelled"] = self.has_labels(name)
+        dicts = {}
+        for dict_id in self.dictionary_ids():
+            a = self.root[f"dictionaries/{dict_id}"].attrs
+            dicts[dict_id] = {"method": a.get("method"), "n_atoms": a.get("n_atoms"),
+                              "records": a.get("records"), "created": a.get("created")}
+        outputs = {}
+        for top in ("codes", "features"):
+            for dict_id in self.root[top].group_keys():
+                for name in self.root[f"{top}/{dict_id}"].group_keys():
+                    out = self.output(f"{top}/{dict_id}/{name}")
+                    flags = out.done_flags()
+                    outputs[f"{top}/{dict_id}/{name}"] = {"chunks_done": int(flags.sum()),
+                                                          "n_chunks": int(flags.size)}
+        return {"url": self.url, "layout": LAYOUT_VERSION, "promoted": self.promoted,
+                "records": data, "dictionaries": dicts, "outputs": outputs,
+                "evaluations": len(self.evaluations())}
+
+    # ------------------------------------------------------------------ helpers
+    def _node(self, path: str, what: str) -> Any:
+        if path not in self.root:
+            raise NotFound(problem(path, f"an existing {what}", "nothing at that path",
+                                   f"List the workspace (atomline show {self.url}) for what is there."))
+        return self.root[path]
+
+    def _refuse_existing(self, path: str, overwrite: bool) -> None:
+        if path in self.root and not overwrite:
+            raise OutputExists(problem(path, "a free name", "an existing entry",
+                                       "Pick another name or pass overwrite=True (--overwrite)."))
+
+
+# ---------------------------------------------------------------------- validation
+def check_records(arr: Any, where: str) -> None:
+    """Refuse records of a shape or dtype the stages cannot use.
+
+    Parameters
+    ----------
+    arr : array-like with ``shape`` and ``dtype``
+    where : str
+        Name used in the message.
+
+    Raises
+    ------
+    InputError
+    """
+    dtype = np.dtype(arr.dtype)
+    if dtype.kind != "f" or dtype.itemsize not in (4, 8):
+        raise InputError(problem(where, "float32 or float64 records", f"dtype {dtype}",
+                                 "Convert the records to float32 before adding them."))
+    if len(arr.shape) not in (2, 3, 4):
+        raise InputError(problem(where, "rank 2 (n, L), 3 (n, H, W) or 4 (n, H, W, C)",
+                                 f"shape {tuple(arr.shape)}", "Put one record per row."))
+    if arr.shape[0] == 0 or int(np.prod(arr.shape[1:])) == 0:
+        raise InputError(problem(where, "at least one non-empty record", f"shape {tuple(arr.shape)}",
+                                 "Add some records."))
+
+
+def check_finite(block: np.ndarray, where: str, first_row: int) -> None:
+    """Refuse NaN or Inf, naming the first bad row."""
+    finite = np.isfinite(block.reshape(block.shape[0], -1)).all(axis=1)
+    if not finite.all():
+        row = first_row + int(np.flatnonzero(~finite)[0])
+        raise InputError(problem(f"{where}, row {row}", "finite values", "NaN or Inf",
+                                 "Clean or drop the bad rows first."))
+
+
+def _default_chunk_rows(shape: tuple[int, ...], dtype: np.dtype) -> int:
+    row_bytes = int(np.prod(shape[1:])) * np.dtype(dtype).itemsize
+    return int(max(1, min(shape[0], _TARGET_CHUNK_BYTES // max(row_bytes, 1))))
+
+
+def _open_array(url: str, path: str, storage_options: dict | None) -> zarr.Array:
+    kwargs = {"storage_options": storage_options} if storage_options and "://" in str(url) else {}
+    try:
+        node = zarr.open(store=url, path=path or None, mode="r", **kwargs)
+    except Exception as exc:  # zarr raises several kinds for a missing or foreign node
+        raise NotFound(problem(f"{url}:{path}", "a readable Zarr array", f"{type(exc).__name__}: {exc}",
+                               "Check the URL, the array path and the credentials.")) from exc
+    if not isinstance(node, zarr.Array):
+        raise InputError(problem(f"{url}:{path}", "a Zarr array", "a group",
+                                 "Give the path of the array inside the store."))
+    return node
+
+
+def _is_empty_place(url: str, storage_options: dict | None) -> bool:
+    if "://" not in url:
+        return not os.path.exists(url) or not os.listdir(url)
+    import fsspec
+
+    fs, path = fsspec.core.url_to_fs(url, **(storage_options or {}))
+    try:
+        return not fs.exists(path) or not fs.ls(path)
+    except FileNotFoundError:
+        return True
+
+
+def _plain(value: Any) -> Any:
+    """Deep-convert to plain JSON types (a numpy scalar would poison Zarr attributes)."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return _plain(value.tolist())
+    if isinstance(value, np.generic):
+        return value.item()
+    return value
+
+
+class _Digest:
+    """Streaming SHA-256 of an array's shape, dtype and bytes, fed in row blocks."""
+
+    def __init__(self, shape: tuple[int, ...], dtype: np.dtype):
+        self._h = hashlib.sha256(f"{tuple(shape)}|{np.dtype(dtype).str}".encode())
+
+    def update(self, block: np.ndarray) -> None:
+        self._h.update(np.ascontiguousarray(block).tobytes())
+
+    def hexdigest(self) -> str:
+        return self._h.hexdigest()[:16]
+
+
+def iter_row_chunks(arr: zarr.Array, chunks: list[int] | None = None) -> Iterator[tuple[int, slice]]:
+    """Yield ``(chunk number, row slice)`` for the row chunks of ``arr``.
+
+    Parameters
+    ----------
+    arr : zarr.Array of shape (n, ...)
+    chunks : list of int, optional
+        Only these chunk numbers; all by default.
+    """
+    rows = arr.chunks[0]
+    n = arr.shape[0]
+    for c in range(-(-n // rows)) if chunks is None else chunks:
+        yield c, slice(c * rows, min(n, (c + 1) * rows))
