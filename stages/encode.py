@@ -23,7 +23,7 @@ from prefect.cache_policies import NO_CACHE
 from threadpoolctl import threadpool_limits
 
 from .coding import code, code_width, gram
-from .errors import NotFound, problem
+from .errors import FingerprintMismatch, InputError, problem
 from .prep import Normaliser, PatchGeometry
 from .workspace import Workspace, fingerprint_params, iter_row_chunks
 
@@ -70,7 +70,7 @@ def prepare_encode(
     stored = ws.load_dictionary(dict_id)
     geometry = PatchGeometry.from_attrs(stored.attrs["geometry"])
     if tuple(arr.shape[1:]) != geometry.record_shape:
-        raise NotFound(problem(f"dictionary {dict_id}", f"records shaped {geometry.record_shape}",
+        raise InputError(problem(f"dictionary {dict_id}", f"records shaped {geometry.record_shape}",
                                f"records {records!r} shaped {tuple(arr.shape[1:])}",
                                "Train a dictionary on records of this shape."))
     if coder is None:
@@ -149,7 +149,7 @@ def encode_chunks(
     arr = ws.records(records)
     stored = ws.load_dictionary(dict_id)
     if stored.fingerprint != attrs["dictionary_fingerprint"]:
-        raise NotFound(problem(codes_path(dict_id, records),
+        raise FingerprintMismatch(problem(codes_path(dict_id, records),
                                f"dictionary fingerprint {attrs['dictionary_fingerprint']}",
                                stored.fingerprint, "Run prepare_encode with overwrite=True."))
     geometry = PatchGeometry.from_attrs(attrs["geometry"])

@@ -24,7 +24,7 @@ import numpy as np
 from prefect import task
 from prefect.cache_policies import NO_CACHE
 
-from .errors import InputError, problem
+from .errors import FingerprintMismatch, InputError, problem
 from .encode import codes_path
 from .prep import PatchGeometry
 from .workspace import Workspace, fingerprint_params
@@ -210,7 +210,7 @@ def pool_chunks(
     codes = ws.output(codes_path(dict_id, records))
     attrs, cattrs = out.attrs, codes.attrs
     if attrs["codes_fingerprint"] != cattrs["fingerprint"]:
-        raise InputError(problem(features_path(dict_id, records),
+        raise FingerprintMismatch(problem(features_path(dict_id, records),
                                  f"codes with fingerprint {attrs['codes_fingerprint']}",
                                  cattrs["fingerprint"], "Run prepare_pool with overwrite=True."))
     geometry = PatchGeometry.from_attrs(cattrs["geometry"])
