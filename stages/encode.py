@@ -83,7 +83,6 @@ def prepare_encode(
     attrs = {
         "records": records,
         "dict_id": dict_id,
-        "records_fingerprint": ws.records_fingerprint(records),
         "dictionary_fingerprint": stored.fingerprint,
         "params": params,
         "patches_per_record": P,
@@ -92,9 +91,10 @@ def prepare_encode(
         "n_atoms": int(stored.atoms.shape[0]),
         "width": width,
     }
+    # The records' content is not in the fingerprint but in ``covers``: codes made before
+    # rows were appended are grown and only the new chunks encoded (Workspace.create_output).
     attrs["fingerprint"] = fingerprint_params(
-        {k: attrs[k] for k in ("records_fingerprint", "dictionary_fingerprint", "params",
-                               "record_chunk_rows")}
+        {k: attrs[k] for k in ("records", "dictionary_fingerprint", "params", "record_chunk_rows")}
     )
     out = ws.create_output(
         codes_path(dict_id, records),
@@ -104,6 +104,8 @@ def prepare_encode(
                 "count": ((), "int32")},
         attrs=attrs,
         overwrite=overwrite,
+        covers={"records": records, "rows": int(arr.shape[0]),
+                "fingerprint": ws.records_fingerprint(records)},
     )
     return {"output": codes_path(dict_id, records), "n_chunks": out.n_chunks,
             "pending": out.pending(), "coder": coder, "coder_options": coder_options,

@@ -112,6 +112,9 @@ def evaluate_features(
                                  f"{int((~out.done_flags()).sum())} chunk(s) not pooled",
                                  "Run the encode and pool flows first."))
     y = ws.labels(labels or records)
+    if out.n_rows != y.shape[0]:  # records grew (append_records) since these features
+        raise InputError(problem(features_path(dict_id, records), f"features for all {y.shape[0]} records",
+                                 f"features for {out.n_rows}", "Run the encode and pool flows again."))
     rows = _labelled_rows(y, max_rows, seed)
     train_i, test_i = train_test_split(rows, test_size=test_fraction, stratify=y[rows],
                                        random_state=seed)

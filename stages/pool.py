@@ -175,7 +175,7 @@ def prepare_pool(
     out = ws.create_output(features_path(dict_id, records), n_rows=n_records,
                            chunk_rows=cattrs["record_chunk_rows"],
                            arrays={"values": ((F,), "float32")}, attrs=attrs,
-                           overwrite=overwrite)
+                           overwrite=overwrite, covers=cattrs["covers"])
     return {"output": features_path(dict_id, records), "n_chunks": out.n_chunks,
             "pending": out.pending(), "n_features": F}
 

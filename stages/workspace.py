@@ -43,13 +43,21 @@ import zarr
 
 from .errors import FingerprintMismatch, InputError, LayoutError, NotFound, OutputExists, problem
 
-__all__ = ["Workspace", "Output", "StoredDictionary", "LAYOUT_VERSION", "fingerprint_params"]
+__all__ = ["Workspace", "Output", "StoredDictionary", "LAYOUT_VERSION", "fingerprint_params",
+           "resolve_storage_options", "STORAGE_OPTIONS_ENV"]
 
 #: Version of the layout above. A store with a larger number was written by a newer
 #: atomline and is refused rather than misread.
 LAYOUT_VERSION = 1
 _MARK = "atomline"
 _TARGET_CHUNK_BYTES = 4 * 2**20  # ~4 MiB of input per row chunk unless told otherwise
+#: Records are fingerprinted in blocks of about this many bytes, a row count fixed by the
+#: row shape and dtype alone, so the fingerprint does not depend on the Zarr chunking and
+#: an append re-reads at most one block (the partial last one).
+_DIGEST_BLOCK_BYTES = 4 * 2**20
+#: Environment variable holding storage options (JSON, or ``@path`` of a JSON file) for
+#: workspaces on fsspec URLs; see :func:`resolve_storage_options`.
+STORAGE_OPTIONS_ENV = "ATOMLINE_STORAGE_OPTIONS"
 
 
 def _package_version() -> str:
@@ -177,6 +185,47 @@ class Output:
         """Whether every chunk is finished."""
         return bool(self.done_flags().all())
 
+    @property
+    def n_rows(self) -> int:
+        """Rows of the data arrays."""
+        return int(self.group[self._data_names()[0]].shape[0])
+
+    def _data_names(self) -> list[str]:
+        return sorted(k for k in self.group.array_keys() if k != "done")
+
+    def grow(self, n_rows: int) -> list[int]:
+        """Extend the data arrays to ``n_rows`` rows (the records grew).
+
+        The old last chunk, if it was partial, gets rows it did not have, so its done flag
+        is cleared first; then the arrays and the flags are extended (new chunks pending).
+        Every step can be repeated, so a grow that stops half-way is finished by the next.
+
+        Parameters
+        ----------
+        n_rows : int
+            New row count, at least the current one.
+
+        Returns
+        -------
+        list of int
+            Chunk numbers that became pending.
+        """
+        names = self._data_names()
+        chunk_rows = int(self.group[names[0]].chunks[0])
+        old = self.n_rows
+        if n_rows < old:
+            raise FingerprintMismatch(problem(f"output {self.group.path}", f"at most {old} rows to keep",
+                                              f"{n_rows} rows", "Outputs only grow; recreate it with overwrite."))
+        first = old // chunk_rows
+        if old % chunk_rows and first < self.n_chunks:
+            self._done[first] = 0
+        for name in names:
+            a = self.group[name]
+            a.resize((n_rows, *a.shape[1:]))
+        n_chunks = -(-n_rows // chunk_rows)
+        self._done.resize((n_chunks,))
+        return [c for c in range(first, n_chunks) if not self._done[c]]
+
 
 class Workspace:
     """An atomline workspace on any Zarr store.
@@ -208,6 +257,8 @@ class Workspace:
             Create an empty workspace if none is there (an existing one is opened).
         storage_options : dict, optional
             Passed to fsspec (credentials, endpoint). Never written into the workspace.
+            When omitted, taken from the environment (:func:`resolve_storage_options`),
+            which is how flows and their workers get them without Prefect recording them.
 
         Returns
         -------
@@ -222,6 +273,7 @@ class Workspace:
             No workspace at ``url`` and ``create`` is false.
         """
         url = os.fspath(url)
+        storage_options = resolve_storage_options(url, storage_options)
         kwargs = {"storage_options": storage_options} if storage_options else {}
         try:
             root = zarr.open_group(store=url, mode="r+", **kwargs)
@@ -290,13 +342,13 @@ class Workspace:
         rows = chunk_rows or _default_chunk_rows(arr.shape, arr.dtype)
         z = self.root.create_array(path, shape=arr.shape, chunks=(rows,) + arr.shape[1:],
                                    dtype=arr.dtype, overwrite=True)
-        digest = _Digest(arr.shape, arr.dtype)
+        digest = _Digest(arr.shape[1:], arr.dtype)
         for start in range(0, arr.shape[0], rows):
             block = np.asarray(arr[start : start + rows])
             check_finite(block, f"records {name!r}", start)
             z[start : start + block.shape[0]] = block
             digest.update(block)
-        z.attrs["fingerprint"] = digest.hexdigest()
+        z.attrs.update(_fingerprint_attrs(digest, []))
         return self.describe_records(name)
 
     def link_records(self, name: str, url: str, path: str = "", *, overwrite: bool = False,
@@ -327,7 +379,7 @@ class Workspace:
         check_records(arr, f"linked array {url}:{path}")
         target = f"data/{name}"
         self._refuse_existing(target, overwrite)
-        digest = _Digest(arr.shape, arr.dtype)
+        digest = _Digest(arr.shape[1:], arr.dtype)
         rows = arr.chunks[0]
         for start in range(0, arr.shape[0], rows):
             block = arr[start : start + rows]
@@ -335,9 +387,120 @@ class Workspace:
             digest.update(block)
         g = self.root.create_group(target, overwrite=True)
         g.attrs.update({"link": {"url": str(url), "path": str(path)},
-                        "fingerprint": digest.hexdigest(),
-                        "shape": list(arr.shape), "dtype": str(arr.dtype)})
+                        "shape": list(arr.shape), "dtype": str(arr.dtype),
+                        **_fingerprint_attrs(digest, [])})
         return self.describe_records(name)
+
+    def append_records(
+        self,
+        name: str,
+        source: np.ndarray | str | os.PathLike,
+        *,
+        labels: np.ndarray | str | os.PathLike | None = None,
+    ) -> dict:
+        """Append rows to ``data/<name>``, streaming them in whole chunks.
+
+        Existing rows are never rewritten (the partial last chunk is filled up). The
+        fingerprint is extended by re-reading at most one digest block, and the new
+        length and fingerprint are added to the records' history, which is how codes and
+        features made before the append know they cover a prefix and only the chunks
+        from the old last one on need work. Attributes are written last: an append that
+        stops half-way is rolled back by the next call.
+
+        Parameters
+        ----------
+        name : str
+            Existing records (copied in, not linked).
+        source : ndarray of shape (m, *row shape) or path to a ``.npy`` file
+            Same row shape and dtype as the records; a ``.npy`` file is memory-mapped.
+        labels : ndarray of shape (m,) or path to a ``.npy`` file, optional
+            Required when the records are labelled, refused otherwise.
+
+        Returns
+        -------
+        dict
+            As :meth:`describe_records`, plus ``"appended"`` (m) and ``"first_new_chunk"``.
+
+        Raises
+        ------
+        InputError
+            Other row shape or dtype, NaN/Inf (nothing is kept), missing or extra labels.
+        """
+        node = self._node(f"data/{_check_name(name, 'records name')}", "records")
+        if isinstance(node, zarr.Group):
+            raise InputError(problem(f"data/{name}", "records copied into the workspace",
+                                     "a link to another store",
+                                     "Append to the linked array where it lives, then link it again."))
+        if isinstance(source, (str, os.PathLike)):
+            source = np.load(os.fspath(source), mmap_mode="r", allow_pickle=False)
+        z = node
+        where = f"rows appended to {name!r}"
+        check_records(source, where)
+        if tuple(source.shape[1:]) != tuple(z.shape[1:]) or np.dtype(source.dtype) != z.dtype:
+            raise InputError(problem(where, f"rows of shape {tuple(z.shape[1:])}, {z.dtype}",
+                                     f"{tuple(source.shape[1:])}, {source.dtype}",
+                                     "Convert the new rows to the archive's row shape and dtype."))
+        m = int(source.shape[0])
+        new_labels = self._appended_labels(name, labels, m)
+        attrs = dict(z.attrs)
+        old = _recorded_rows(z)
+        tail = tuple(z.shape[1:])
+        if z.shape[0] != old:  # an earlier append stopped before its attributes: drop it
+            z.resize((old, *tail))
+        digest = _Digest(tail, z.dtype, attrs.get("digest_blocks"))
+        digest.update_from(z, old)  # only the partial last block is read again
+        z.resize((old + m, *tail))
+        rows = int(z.chunks[0])
+        start = old
+        try:
+            while start < old + m:
+                stop = min(old + m, (start // rows + 1) * rows)  # up to the next chunk edge
+                block = np.asarray(source[start - old : stop - old])
+                check_finite(block, where, start - old)
+                z[start:stop] = block
+                digest.update(block)
+                start = stop
+        except InputError:
+            z.resize((old, *tail))
+            raise
+        if new_labels is not None:
+            lab = self.root[f"labels/{name}"]
+            lab.resize((old + m,))
+            lab[old:] = new_labels
+        history = attrs.get("history") or [{"rows": old, "fingerprint": attrs["fingerprint"]}]
+        z.attrs.update(_fingerprint_attrs(digest, history))  # last: the append counts from here
+        info = self.describe_records(name)
+        info.update(appended=m, first_new_chunk=old // rows)
+        return info
+
+    def _appended_labels(self, name: str, labels: Any, m: int) -> np.ndarray | None:
+        """Validate the labels of appended rows against whether the records are labelled."""
+        if isinstance(labels, (str, os.PathLike)):
+            labels = np.load(os.fspath(labels), allow_pickle=False)
+        if not self.has_labels(name):
+            if labels is not None:
+                raise InputError(problem(f"labels of rows appended to {name!r}", "none (unlabelled records)",
+                                         f"{np.shape(labels)[0]} labels", "Add labels for all rows first."))
+            return None
+        if labels is None:
+            raise InputError(problem(f"rows appended to {name!r}", f"{m} labels (the records are labelled)",
+                                     "no labels", "Pass labels= with one label per new row."))
+        labels = np.asarray(labels)
+        if labels.ndim != 1 or labels.dtype.kind not in "iu" or labels.shape[0] != m:
+            raise InputError(problem(f"labels of rows appended to {name!r}", f"{m} integer labels",
+                                     f"shape {labels.shape}, dtype {labels.dtype}",
+                                     "Pass one integer label per new row."))
+        lab = self.root[f"labels/{name}"]
+        old = _recorded_rows(self._node(f"data/{name}", "records"))
+        if lab.shape[0] != old:  # an earlier append stopped half-way
+            lab.resize((old,))
+        return labels.astype(np.int64)
+
+    def records_history(self, name: str) -> list[dict]:
+        """Every length the records have had: ``[{"rows", "fingerprint"}, …]``, oldest first."""
+        attrs = dict(self._node(f"data/{name}", "records").attrs)
+        return list(attrs.get("history") or [{"rows": self.records(name).shape[0],
+                                              "fingerprint": attrs["fingerprint"]}])
 
     def records(self, name: str) -> zarr.Array:
         """The records array ``data/<name>`` (following a link), validated.
@@ -359,6 +522,11 @@ class Workspace:
                     f"{list(arr.shape)} {arr.dtype}", "The linked array changed: link it again."))
         else:
             arr = node
+            if arr.shape[0] != _recorded_rows(arr):
+                raise LayoutError(problem(
+                    f"records {name!r}", f"{_recorded_rows(arr)} rows (as fingerprinted)",
+                    f"{arr.shape[0]} rows: an append stopped half-way",
+                    "Run the append again; it drops the unfinished rows first."))
         check_records(arr, f"records {name!r}")
         return arr
 
@@ -496,11 +664,18 @@ class Workspace:
     # ------------------------------------------------------------------ outputs
     def create_output(self, path: str, *, n_rows: int, chunk_rows: int,
                       arrays: dict[str, tuple[tuple[int, ...], str]], attrs: dict,
-                      overwrite: bool = False) -> Output:
-        """Create (or reopen for resuming) a chunked output.
+                      overwrite: bool = False, covers: dict | None = None) -> Output:
+        """Create (or reopen for resuming, or grow) a chunked output.
 
         An output that exists with the same ``attrs["fingerprint"]`` is reopened so a rerun
         resumes it; one with another fingerprint is refused unless ``overwrite``.
+
+        With ``covers``, the output is made from records that may grow: its fingerprint
+        leaves their content out, and ``attrs["covers"]`` names the records' length and
+        fingerprint it was made from. Reopened for records that have grown since — the
+        covered length and fingerprint are in the records' history — it grows to
+        ``n_rows`` (:meth:`Output.grow`); made from records that were replaced, it is
+        refused unless ``overwrite``.
 
         Parameters
         ----------
@@ -516,14 +691,21 @@ class Workspace:
             Plain JSON; must contain ``fingerprint``.
         overwrite : bool
             Replace an existing output made from other inputs, or a finished one.
+        covers : dict, optional
+            ``{"records": name, "rows": int, "fingerprint": str}``: the records (current
+            length and fingerprint) the output is made from.
 
         Returns
         -------
         Output
         """
+        if covers is not None:
+            attrs = dict(attrs, covers=dict(covers))
         if path in self.root:
             old = Output(self.root[path])
             same = old.attrs.get("fingerprint") == attrs["fingerprint"]
+            if same and not overwrite and covers is not None:
+                same = self._extend_cover(old, covers, n_rows)
             if same and not overwrite:
                 return old
             if not overwrite:
@@ -540,6 +722,23 @@ class Workspace:
         g.create_array("done", shape=(n_chunks,), chunks=(1,), dtype="u1", fill_value=0)
         g.attrs.update(_plain(dict(attrs, created=_now(), version=_package_version())))
         return Output(g)
+
+    def _extend_cover(self, out: Output, covers: dict, n_rows: int) -> bool:
+        """Grow ``out`` when the records it covers are a prefix of ``covers``.
+
+        Returns whether ``out`` now covers ``covers`` (False: made from other records).
+        """
+        had = out.attrs.get("covers") or {}
+        if had.get("rows") == covers["rows"] and had.get("fingerprint") == covers["fingerprint"]:
+            return True
+        history = self.records_history(covers["records"])
+        prefix = {"rows": had.get("rows"), "fingerprint": had.get("fingerprint")}
+        now = {"rows": covers["rows"], "fingerprint": covers["fingerprint"]}
+        if prefix not in history or now not in history or prefix["rows"] > now["rows"]:
+            return False
+        out.grow(n_rows)
+        out.group.attrs["covers"] = dict(covers)  # last: a grow cut short is redone
+        return True
 
     def output(self, path: str) -> Output:
         """Open an existing output."""
@@ -653,13 +852,104 @@ def check_finite(block: np.ndarray, where: str, first_row: int) -> None:
                                  "Clean or drop the bad rows first."))
 
 
+def _recorded_rows(arr: zarr.Array) -> int:
+    """Rows covered by the records' fingerprint (the last history entry)."""
+    history = arr.attrs.get("history")
+    return int(history[-1]["rows"]) if history else int(arr.shape[0])
+
+
+def _fingerprint_attrs(digest: _Digest, history: list[dict]) -> dict:
+    """Attributes of a records array after (re)hashing: fingerprint, blocks, history.
+
+    ``history`` lists ``{"rows", "fingerprint"}`` for every length the records have had
+    (one entry per add or append), so an output can tell that the records it covers are
+    a prefix of the current ones.
+    """
+    fingerprint = digest.hexdigest()
+    return {"fingerprint": fingerprint, "digest_blocks": list(digest.blocks),
+            "history": list(history) + [{"rows": int(digest.rows), "fingerprint": fingerprint}]}
+
+
 def _default_chunk_rows(shape: tuple[int, ...], dtype: np.dtype) -> int:
     row_bytes = int(np.prod(shape[1:])) * np.dtype(dtype).itemsize
     return int(max(1, min(shape[0], _TARGET_CHUNK_BYTES // max(row_bytes, 1))))
 
 
+def resolve_storage_options(url: str, given: dict | None = None) -> dict | None:
+    """Storage options (credentials, endpoint) for a workspace or store URL.
+
+    Flows take the workspace as a URL only, because Prefect records flow parameters; the
+    options reach every process that opens the store (flow, thread, process or Dask
+    worker) through its environment instead:
+
+    1. ``given`` — options passed in code (Python API); used as they are;
+    2. else ``$ATOMLINE_STORAGE_OPTIONS``: a JSON object, or ``@/path/to/options.json``;
+    3. else none: fsspec and s3fs find credentials their own way (fsspec's
+       ``FSSPEC_S3_*`` variables and config files, ``AWS_*`` variables, profiles, roles).
+
+    Options are never written into the workspace, a log or an error message.
+
+    Parameters
+    ----------
+    url : str
+        Local path or fsspec URL.
+    given : dict, optional
+
+    Returns
+    -------
+    dict or None
+        ``None`` for local paths and when nothing is configured.
+
+    Raises
+    ------
+    InputError
+        The URL carries a password, or the environment holds something other than a
+        JSON object (the value itself is not repeated in the message).
+    """
+    url = str(url)
+    if "://" not in url:
+        return None
+    if _url_has_secret(url):
+        raise InputError(problem("store URL", "a URL without user:password",
+                                 "credentials inside the URL (not repeated here)",
+                                 f"Put them in ${STORAGE_OPTIONS_ENV} or in fsspec's configuration."))
+    if given:
+        return dict(given)
+    text = os.environ.get(STORAGE_OPTIONS_ENV, "").strip()
+    if not text:
+        return None
+    where = f"${STORAGE_OPTIONS_ENV}"
+    if text.startswith("@"):
+        where = f"storage options file {text[1:]}"
+        try:
+            with open(text[1:], encoding="utf-8") as fh:
+                text = fh.read()
+        except OSError as exc:
+            raise InputError(problem(where, "a readable JSON file", type(exc).__name__,
+                                     "Check the path after '@'.")) from None
+    try:
+        options = json.loads(text)
+    except json.JSONDecodeError:
+        options = None
+    if not isinstance(options, dict):
+        raise InputError(problem(where, "a JSON object of fsspec storage options",
+                                 "something else (value not shown: it may hold secrets)",
+                                 'Set it to e.g. {"client_kwargs": {"endpoint_url": "..."}}.'))
+    return options
+
+
+def _url_has_secret(url: str) -> bool:
+    from urllib.parse import urlsplit
+
+    try:
+        return urlsplit(url).password is not None
+    except ValueError:  # an unparsable port: not a credential, leave it to fsspec
+        return False
+
+
 def _open_array(url: str, path: str, storage_options: dict | None) -> zarr.Array:
-    kwargs = {"storage_options": storage_options} if storage_options and "://" in str(url) else {}
+    storage_options = resolve_storage_options(url, storage_options)
+    kwargs = {"storage_options": storage_options} if storage_options else {}
     try:
         node = zarr.open(store=url, path=path or None, mode="r", **kwargs)
     except Exception as exc:  # zarr raises several kinds for a missing or foreign node
@@ -697,16 +987,56 @@ def _plain(value: Any) -> Any:
 
 
 class _Digest:
-    """Streaming SHA-256 of an array's shape, dtype and bytes, fed in row blocks."""
+    """Streaming, appendable fingerprint of an array's rows.
 
-    def __init__(self, shape: tuple[int, ...], dtype: np.dtype):
-        self._h = hashlib.sha256(f"{tuple(shape)}|{np.dtype(dtype).str}".encode())
+    Rows are hashed in blocks of a fixed row count (about 4 MiB, set by the row shape and
+    dtype only), and the fingerprint is the SHA-256 of the row shape, the dtype, the row
+    count and the block digests. So it follows the content and not the Zarr chunking, and
+    after an append only the partial last block has to be read again.
 
-    def update(self, block: np.ndarray) -> None:
-        self._h.update(np.ascontiguousarray(block).tobytes())
+    Parameters
+    ----------
+    tail : tuple of int
+        Shape of one row.
+    dtype : numpy dtype
+    blocks : list of str, optional
+        Digests of the full blocks already hashed (from :attr:`blocks` of an earlier run).
+    """
+
+    def __init__(self, tail: tuple[int, ...], dtype: np.dtype, blocks: list[str] | None = None):
+        self._header = f"{tuple(int(t) for t in tail)}|{np.dtype(dtype).str}"
+        row_bytes = int(np.prod(tail)) * np.dtype(dtype).itemsize
+        self.block_rows = max(1, _DIGEST_BLOCK_BYTES // max(row_bytes, 1))
+        self.blocks = list(blocks or [])
+        self.rows = len(self.blocks) * self.block_rows
+        self._partial = hashlib.sha256()
+
+    def update(self, rows: np.ndarray) -> None:
+        """Hash the next rows (ndarray of shape (m, *tail)), in order."""
+        start = 0
+        while start < rows.shape[0]:
+            room = self.block_rows - self.rows % self.block_rows
+            piece = np.ascontiguousarray(rows[start : start + room])
+            self._partial.update(piece.tobytes())
+            self.rows += piece.shape[0]
+            start += piece.shape[0]
+            if self.rows % self.block_rows == 0:
+                self.blocks.append(self._partial.hexdigest()[:16])
+                self._partial = hashlib.sha256()
+
+    def update_from(self, arr: Any, n_rows: int) -> None:
+        """Hash rows ``self.rows … n_rows`` of ``arr`` (resuming after stored blocks)."""
+        for start in range(self.rows, n_rows, self.block_rows):
+            self.update(np.asarray(arr[start : min(n_rows, start + self.block_rows)]))
 
     def hexdigest(self) -> str:
-        return self._h.hexdigest()[:16]
+        """16 hex digits identifying every row hashed so far."""
+        h = hashlib.sha256(f"{self._header}|{self.rows}".encode())
+        for block in self.blocks:
+            h.update(block.encode())
+        if self.rows % self.block_rows:
+            h.update(self._partial.hexdigest()[:16].encode())
+        return h.hexdigest()[:16]
 
 
 def iter_row_chunks(arr: zarr.Array, chunks: list[int] | None = None) -> Iterator[tuple[int, slice]]:
