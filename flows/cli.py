@@ -8,6 +8,7 @@ configured, Prefect starts a temporary one for the run (no set-up needed).
     atomline add-records WS NAME FILE.npy    copy records in, chunk by chunk
     atomline add-labels WS NAME FILE.npy     integer labels, one per record
     atomline link-records WS NAME URL        use an existing Zarr array without copying
+    atomline append-records WS NAME FILE.npy rows that arrived since (nightly encodes only them)
     atomline train|encode|pool|evaluate WS NAME    run one stage's flow
     atomline nightly WS NAME                 train → encode → pool → evaluate → promote
     atomline show WS                         what the workspace holds
@@ -99,6 +100,12 @@ def _parser() -> argparse.ArgumentParser:
     sp.add_argument("file", help=".npy file of shape (n,), integer classes")
     sp.add_argument("--overwrite", action="store_true", help="replace existing labels")
 
+    sp = command("append-records", _run_append, _describe_records,
+                 "append rows from a .npy file to data/NAME (later runs encode only the new chunks)")
+    _ws_name(sp)
+    sp.add_argument("file", help=".npy file of new rows, same row shape and dtype as data/NAME; streamed")
+    sp.add_argument("--labels", dest="labels_file", help=".npy file of their integer labels (required if NAME is labelled)")
+
     sp = command("link-records", _run_link, _describe_records,
                  "use an existing Zarr array (any store URL) as data/NAME without copying it")
     _ws_name(sp)
@@ -109,6 +116,7 @@ def _parser() -> argparse.ArgumentParser:
     sp = command("train", _run_train, None, "learn a dictionary from a sample of data/NAME")
     _ws_name(sp)
     _train_options(sp)
+    _runner_options(sp)
 
     sp = command("encode", _run_encode, _describe_stage, "sparse-code every chunk of data/NAME (resumes)")
     _ws_name(sp)
@@ -129,6 +137,7 @@ def _parser() -> argparse.ArgumentParser:
     _ws_name(sp)
     sp.add_argument("--dictionary", help="dictionary id (default: the promoted one)")
     _evaluation_options(sp)
+    _runner_options(sp)
 
     sp = command("nightly", _run_nightly, _describe_nightly,
                  "train a candidate dictionary, encode, pool, evaluate, and promote it if it holds up")
@@ -140,6 +149,9 @@ def _parser() -> argparse.ArgumentParser:
                     help="score compared by the promotion gate (default: %(default)s)")
     sp.add_argument("--tolerance", type=float, default=0.01,
                     help="promote unless the candidate scores worse than the promoted one by more than this (default: %(default)s)")
+    sp.add_argument("--retrain", choices=("always", "if-missing", "never"), default="always",
+                    help="always: train a candidate every run; if-missing/never: keep the promoted "
+                         "dictionary and encode only new records (default: %(default)s)")
     _runner_options(sp)
 
     sp = command("show", _run_show, _describe_show, "list what a workspace holds")
@@ -234,6 +246,8 @@ def _runner_options(sp: argparse.ArgumentParser) -> None:
     sp.add_argument("--workers", type=int, default=os.cpu_count() or 1,
                     help="parallel workers (default: the number of cores, %(default)s)")
     sp.add_argument("--dask-address", help="scheduler address of an existing Dask cluster")
+    sp.add_argument("--batches-per-worker", type=int, default=4,
+                    help="batches of whole chunks per worker, one Prefect task each (default: %(default)s)")
 
 
 def _with_runner(flow, args: argparse.Namespace):
@@ -256,6 +270,12 @@ def _run_add_labels(args):
     return Workspace.open(args.workspace).add_labels(args.name, args.file, overwrite=args.overwrite)
 
 
+def _run_append(args):
+    from atomline.stages.workspace import Workspace
+
+    return Workspace.open(args.workspace).append_records(args.name, args.file, labels=args.labels_file)
+
+
 def _run_link(args):
     from atomline.stages.workspace import Workspace
 
@@ -266,7 +286,7 @@ def _run_link(args):
 def _run_train(args):
     from atomline.flows import train_flow
 
-    return train_flow(args.workspace, args.name, **_train_params(args))
+    return _with_runner(train_flow, args)(args.workspace, args.name, **_train_params(args))
 
 
 def _run_encode(args):
@@ -275,7 +295,8 @@ def _run_encode(args):
     with _progress(args.workspace, args.name, ("codes",), args.json):
         return _with_runner(encode_flow, args)(
             args.workspace, args.name, dict_id=args.dictionary, coder=args.coder,
-            coder_options=_coder_params(args), workers=args.workers, overwrite=args.overwrite)
+            coder_options=_coder_params(args), workers=args.workers,
+            batches_per_worker=args.batches_per_worker, overwrite=args.overwrite)
 
 
 def _run_pool(args):
@@ -284,14 +305,16 @@ def _run_pool(args):
     with _progress(args.workspace, args.name, ("features",), args.json):
         return _with_runner(pool_flow, args)(args.workspace, args.name, dict_id=args.dictionary,
                                              workers=args.workers, overwrite=args.overwrite,
+                                             batches_per_worker=args.batches_per_worker,
                                              **_pool_params(args))
 
 
 def _run_evaluate(args):
     from atomline.flows import evaluate_flow
 
-    return evaluate_flow(args.workspace, args.name, dict_id=args.dictionary, labels=args.labels,
-                         test_fraction=args.test_fraction, max_rows=args.max_rows)
+    return _with_runner(evaluate_flow, args)(args.workspace, args.name, dict_id=args.dictionary,
+                                             labels=args.labels, test_fraction=args.test_fraction,
+                                             max_rows=args.max_rows)
 
 
 def _run_nightly(args):
@@ -301,7 +324,8 @@ def _run_nightly(args):
         return _with_runner(nightly_flow, args)(
             args.workspace, args.name, labels=args.labels, metric=args.metric,
             tolerance=args.tolerance, test_fraction=args.test_fraction, max_rows=args.max_rows,
-            workers=args.workers, **_train_params(args), **_pool_params(args))
+            workers=args.workers, batches_per_worker=args.batches_per_worker, retrain=args.retrain,
+            **_train_params(args), **_pool_params(args))
 
 
 def _run_show(args):
@@ -323,7 +347,9 @@ def _run_demo(args):
         ws.add_labels("vibration", labels)
     with _progress(args.directory, "vibration", ("codes", "features"), args.json):
         report = _with_runner(nightly_flow, args)(args.directory, "vibration", seed=args.seed,
-                                                  workers=args.workers, **DEMO_OPTIONS)
+                                                  workers=args.workers,
+                                                  batches_per_worker=args.batches_per_worker,
+                                                  **DEMO_OPTIONS)
     dictionary = ws.load_dictionary(report["candidate_id"])
     report["dictionary"] = {k: dictionary.attrs[k] for k in ("n_atoms", "n_features", "method", "coder",
                                                              "coder_options", "geometry")}

@@ -26,9 +26,10 @@ from atomline.stages.pool import pool_task, prepare_pool
 from atomline.stages.train import train_task
 from atomline.stages.workspace import Workspace
 
-from .runners import blas_threads, plan_batches, task_runner
+from .runners import blas_threads, check_reachable, plan_batches, task_runner
 
-__all__ = ["train_flow", "encode_flow", "pool_flow", "evaluate_flow", "nightly_flow", "OUTCOMES"]
+__all__ = ["train_flow", "encode_flow", "pool_flow", "evaluate_flow", "nightly_flow", "OUTCOMES",
+           "RETRAIN"]
 
 #: What a nightly run can end with.
 OUTCOMES = {
@@ -36,6 +37,15 @@ OUTCOMES = {
     "promoted": "the candidate scored within tolerance of the promoted one, or better; promoted",
     "unchanged": "the candidate is the promoted dictionary (same inputs); nothing to do",
     "regression": "the candidate scored worse than the promoted one beyond tolerance; not promoted",
+    "kept": "retraining was off: the promoted dictionary was kept and only records it had "
+            "not encoded yet were encoded and pooled",
+}
+
+#: When the nightly flow trains a candidate dictionary.
+RETRAIN = {
+    "always": "train a candidate on the current archive every run (appended rows change it)",
+    "if-missing": "train only when no dictionary is promoted; otherwise keep the promoted one",
+    "never": "never train; keep the promoted dictionary (there must be one)",
 }
 
 
@@ -79,6 +89,7 @@ def encode_flow(workspace: str, records: str, dict_id: str | None = None, coder:
     rerunning after a crash resumes.
     """
     logger = get_run_logger()
+    check_reachable(workspace)
     dict_id = dict_id or _promoted(workspace)
     prepared = prepare_encode(workspace, records, dict_id, coder=coder,
                               coder_options=coder_options, overwrite=overwrite)
@@ -100,6 +111,7 @@ def pool_flow(workspace: str, records: str, dict_id: str | None = None, reduce: 
               split_sign: bool = True, regions: int | list[int] = 4, workers: int = 2,
               batches_per_worker: int = 4, overwrite: bool = False) -> dict:
     """Pool the codes of every pending chunk into per-record features."""
+    check_reachable(workspace)
     dict_id = dict_id or _promoted(workspace)
     prepared = prepare_pool(workspace, records, dict_id, reduce=reduce, split_sign=split_sign,
                             regions=_tuple(regions), overwrite=overwrite)
@@ -135,13 +147,20 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
                  sample_patches: int = 20_000, reduce: str = "max", split_sign: bool = True,
                  regions: int | list[int] = 4, metric: str = "accuracy", tolerance: float = 0.01,
                  test_fraction: float = 0.25, max_rows: int = 20_000, seed: int = 0,
-                 workers: int = 2, batches_per_worker: int = 4) -> dict:
+                 workers: int = 2, batches_per_worker: int = 4, retrain: str = "always") -> dict:
     """Train a candidate dictionary, encode, pool, evaluate, and promote it if it holds up.
 
     The candidate is promoted when no dictionary is promoted yet, or when its score
     (``metric``: ``accuracy`` or ``macro_f1``) is at least the promoted dictionary's minus
     ``tolerance``; both are scored on the same seeded split. The pointer moves only after
     the candidate's features and evaluation are complete.
+
+    ``retrain`` (a key of :data:`RETRAIN`) decides whether a candidate is trained at all.
+    A candidate's id follows the archive's fingerprint, so with ``"always"`` appended rows
+    give a new candidate that encodes everything into its own codes group (the promoted
+    features stay readable, and are brought up to date incrementally for the gate). With
+    ``"if-missing"`` or ``"never"`` and a promoted dictionary, only the chunks the
+    promoted codes do not cover yet are encoded and pooled; the outcome is ``"kept"``.
 
     Returns
     -------
@@ -153,12 +172,14 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
     if metric not in ("accuracy", "macro_f1"):
         raise InputError(problem("metric", "'accuracy' or 'macro_f1'", repr(metric),
                                  "Pick one of the two."))
-    trained = train_flow.fn(workspace, records, n_atoms=n_atoms, patch_size=patch_size, stride=stride,
-                            method=method, coder=coder, coder_options=coder_options,
-                            learner_options=learner_options, preprocessing=preprocessing,
-                            sample_patches=sample_patches, seed=seed)
-    candidate_id = trained["dict_id"]
+    if retrain not in RETRAIN:
+        raise InputError(problem("retrain", f"one of {sorted(RETRAIN)}", repr(retrain),
+                                 "Pick a listed policy."))
+    check_reachable(workspace)
     previous = Workspace.open(workspace).promoted
+    if retrain == "never" and previous is None:
+        raise NotFound(problem(f"workspace {workspace}", "a promoted dictionary (retrain='never')",
+                               "none promoted", "Run once with retrain='if-missing' or 'always'."))
 
     def features_for(dict_id: str) -> tuple[dict, dict]:
         enc = encode_flow.fn(workspace, records, dict_id=dict_id, workers=workers,
@@ -167,12 +188,26 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
                               regions=regions, workers=workers, batches_per_worker=batches_per_worker)
         return enc, pooled
 
-    encoded, pooled = features_for(candidate_id)
     evaluation = dict(labels=labels, test_fraction=test_fraction, max_rows=max_rows, seed=seed)
+    if retrain != "always" and previous is not None:
+        encoded, pooled = features_for(previous)
+        kept_eval = evaluate_task(workspace, records, previous, tag="promoted", **evaluation)
+        logger.info("nightly outcome: kept — %s", OUTCOMES["kept"])
+        return {"candidate_id": previous, "previous_id": previous, "train": None,
+                "encode": encoded, "pool": pooled, "candidate": kept_eval, "promoted": None,
+                "metric": metric, "tolerance": tolerance, "outcome": "kept",
+                "promoted_id": previous, "retrain": retrain}
+
+    trained = train_flow.fn(workspace, records, n_atoms=n_atoms, patch_size=patch_size, stride=stride,
+                            method=method, coder=coder, coder_options=coder_options,
+                            learner_options=learner_options, preprocessing=preprocessing,
+                            sample_patches=sample_patches, seed=seed)
+    candidate_id = trained["dict_id"]
+    encoded, pooled = features_for(candidate_id)
     cand_eval = evaluate_task(workspace, records, candidate_id, tag="candidate", **evaluation)
     report = {"candidate_id": candidate_id, "previous_id": previous, "train": trained,
               "encode": encoded, "pool": pooled, "candidate": cand_eval, "promoted": None,
-              "metric": metric, "tolerance": tolerance}
+              "metric": metric, "tolerance": tolerance, "retrain": retrain}
     if previous is None:
         outcome = "first"
     elif previous == candidate_id:

@@ -28,12 +28,13 @@ from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
 
 from atomline.stages.errors import InputError, problem
 
-__all__ = ["task_runner", "plan_batches", "blas_threads", "RUNNERS"]
+__all__ = ["task_runner", "plan_batches", "blas_threads", "check_reachable", "RUNNERS"]
 
 RUNNERS = ("threads", "processes", "dask")
 
 
-def task_runner(kind: str = "threads", workers: int = 2, address: str | None = None):
+def task_runner(kind: str = "threads", workers: int = 2, address: str | None = None,
+                dask_options: dict | None = None):
     """Make a Prefect task runner.
 
     Parameters
@@ -42,11 +43,15 @@ def task_runner(kind: str = "threads", workers: int = 2, address: str | None = N
         ``threads`` (default): :class:`prefect.task_runners.ThreadPoolTaskRunner`;
         ``processes``: :class:`prefect.task_runners.ProcessPoolTaskRunner`;
         ``dask``: :class:`prefect_dask.DaskTaskRunner` (install ``atomline[dask]``).
+        Process and Dask workers open the workspace by its URL, so it must be a place
+        they can reach (a directory or object storage, not ``memory://``).
     workers : int
         Worker count (threads, processes, or local Dask workers).
     address : str, optional
         Dask scheduler address; a local cluster of ``workers`` single-threaded processes
         when omitted.
+    dask_options : dict, optional
+        Extra keyword arguments of the local Dask cluster (e.g. ``local_directory``).
 
     Returns
     -------
@@ -66,9 +71,32 @@ def task_runner(kind: str = "threads", workers: int = 2, address: str | None = N
                                      "pip install 'atomline[dask]'.")) from exc
         if address:
             return DaskTaskRunner(address=address)
-        return DaskTaskRunner(cluster_kwargs={"n_workers": workers, "threads_per_worker": 1,
-                                              "processes": True, "dashboard_address": ":0"})
+        cluster = {"n_workers": workers, "threads_per_worker": 1, "processes": True,
+                   "dashboard_address": ":0"}
+        return DaskTaskRunner(cluster_kwargs=dict(cluster, **(dask_options or {})))
     raise InputError(problem("runner", f"one of {RUNNERS}", repr(kind), "Pick a listed runner."))
+
+
+def check_reachable(workspace: str) -> None:
+    """Refuse an in-memory workspace when tasks run outside this process.
+
+    Call it inside a flow: it reads the flow run's task runner. ``memory://`` stores live
+    in one process, so process-pool and Dask workers would each see an empty one.
+
+    Raises
+    ------
+    InputError
+    """
+    from prefect.context import FlowRunContext
+
+    ctx = FlowRunContext.get()
+    runner = getattr(ctx, "task_runner", None)
+    if str(workspace).startswith("memory://") and runner is not None \
+            and not isinstance(runner, ThreadPoolTaskRunner):
+        raise InputError(problem(
+            f"workspace {workspace}", "a directory or object-storage URL for this runner",
+            f"an in-memory store, which {type(runner).__name__} workers cannot see",
+            "Use --runner threads, or put the workspace in a directory or on s3://."))
 
 
 def blas_threads(workers: int) -> int:
