@@ -224,7 +224,7 @@ class Output:
             a.resize((n_rows, *a.shape[1:]))
         n_chunks = -(-n_rows // chunk_rows)
         self._done.resize((n_chunks,))
-        return [c for c in range(first, n_chunks) if not self._done[c]]
+        return [first + int(c) for c in np.flatnonzero(~self.done_flags()[first:])]
 
 
 class Workspace:

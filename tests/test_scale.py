@@ -348,3 +348,28 @@ def test_nightly_on_dask_cluster_matches_threads(demo_small, tmp_path):
     assert len(files_threads) > 30
     assert files_dask == files_threads
     assert any(dask_dir.iterdir())  # the local cluster's workers kept their scratch space there
+
+
+def test_cli_append_records(tmp_path, capsys):
+    from atomline.flows.cli import main
+
+    rng = np.random.default_rng(9)
+    X = rng.standard_normal((30, 8)).astype(np.float32)
+    y = rng.integers(0, 2, 30)
+    url = str(tmp_path / "ws.zarr")
+    np.save(tmp_path / "old.npy", X[:20])
+    np.save(tmp_path / "new.npy", X[20:])
+    np.save(tmp_path / "old-labels.npy", y[:20])
+    np.save(tmp_path / "new-labels.npy", y[20:])
+    assert main(["add-records", url, "r", str(tmp_path / "old.npy"), "--chunk-rows", "8", "--json"]) == 0
+    assert main(["add-labels", url, "r", str(tmp_path / "old-labels.npy"), "--json"]) == 0
+    capsys.readouterr()
+    assert main(["append-records", url, "r", str(tmp_path / "new.npy"), "--json"]) == 2  # labels missing
+    assert "labels" in json.loads(capsys.readouterr().out)["message"]
+    assert main(["append-records", url, "r", str(tmp_path / "new.npy"), "--labels",
+                 str(tmp_path / "new-labels.npy"), "--json"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    assert report["shape"] == [30, 8] and report["first_new_chunk"] == 2
+    ws = Workspace.open(url)
+    np.testing.assert_array_equal(ws.records("r")[:], X)
+    np.testing.assert_array_equal(ws.labels("r"), y)
