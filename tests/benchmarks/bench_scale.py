@@ -1,0 +1,296 @@
+"""Scale benchmark: encode throughput per task runner and worker count, against bare numpy.
+
+Run as a script (pytest does not collect ``bench_*.py``)::
+
+    python tests/benchmarks/bench_scale.py                 # 1M rows per runner, 10M-row run
+    python tests/benchmarks/bench_scale.py --rows 200000 --big-rows 0   # quick look
+
+Prints one table per measurement, every figure from this run:
+
+* encode rows/s for 1 and 2 workers with the threads, processes and Dask runners (whole
+  flow wall time, runner start-up included), and the speed-up of 2 workers over 1 as a
+  ratio to the speed-up two bare numpy processes reach doing the same coder work
+  (normalise + OMP on the same rows, same BLAS threads per worker; goal ≥ 0.9);
+* orchestration share at the default batch plan: 1 − Σ task seconds / (workers × flow
+  wall) — time the workers were not inside an encode task (goal ≤ 5 %);
+* peak RSS of the ``atomline encode`` command on 1× and 10× the rows (goal: within 10 %);
+* rows/s for a ``--big-rows``-row, 64-dimensional archive (default ten million).
+
+The records are invented: sparse combinations of random unit atoms plus noise (a
+benchmark load, not data). The dictionary is learned from them by the train stage.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import multiprocessing as mp
+import os
+import resource
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+
+os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
+os.environ.setdefault("PREFECT_HOME", tempfile.mkdtemp(prefix="atomline-bench-prefect-"))
+os.environ.setdefault("PREFECT_LOGGING_LEVEL", "ERROR")
+
+import numpy as np  # noqa: E402
+
+D, K, NONZERO = 64, 128, 5
+BLOCK = 500_000  # rows generated and appended at a time (128 MB of float32)
+
+
+def synthetic_block(start: int, n: int, seed: int = 7) -> np.ndarray:
+    """Rows ``start … start+n`` of the benchmark load: 5 random atoms each, plus noise.
+
+    Returns
+    -------
+    ndarray of shape (n, 64), float32
+    """
+    rng = np.random.default_rng([seed, start])
+    gen = np.random.default_rng(seed)
+    W = gen.standard_normal((K, D))
+    W /= np.linalg.norm(W, axis=1, keepdims=True)
+    idx = rng.integers(0, K, (n, NONZERO))
+    coef = rng.standard_normal((n, NONZERO))
+    X = np.einsum("nk,nkd->nd", coef, W[idx]) + 0.05 * rng.standard_normal((n, D))
+    return X.astype(np.float32)
+
+
+def fill_records(ws, name: str, n_rows: int) -> None:
+    """Add ``n_rows`` benchmark rows to ``data/<name>``, streamed in blocks (add, then append)."""
+    for start in range(0, n_rows, BLOCK):
+        block = synthetic_block(start, min(BLOCK, n_rows - start))
+        if start == 0:
+            ws.add_records(name, block)
+        else:
+            ws.append_records(name, block)
+
+
+# ---------------------------------------------------------------------------- bare numpy
+def _bare_worker(args):
+    """One bare process: normalise and OMP-code its rows, chunk by chunk, after a barrier."""
+    barrier, start, n, atoms, prep_attrs, prep_arrays, blas, chunk, out = args
+    from threadpoolctl import threadpool_limits
+
+    from atomline.stages.coding import code, gram
+    from atomline.stages.prep import Normaliser
+
+    normaliser = Normaliser.from_stored(prep_attrs, prep_arrays)
+    X = synthetic_block(start, n)
+    atoms = atoms.astype(X.dtype)
+    G = gram(atoms)
+    barrier.wait()
+    t0 = time.perf_counter()
+    with threadpool_limits(limits=blas):
+        for s in range(0, n, chunk):
+            code(normaliser.apply(X[s : s + chunk]), atoms, "omp", n_nonzero=NONZERO, gram=G)
+    out.put(time.perf_counter() - t0)
+
+
+def bare_seconds(n_procs: int, n_rows: int, stored, blas: int, chunk: int) -> float:
+    """Wall time for ``n_procs`` spawned processes sharing ``n_rows`` rows equally."""
+    ctx = mp.get_context("spawn")
+    barrier, out = ctx.Barrier(n_procs), ctx.Queue()
+    share = n_rows // n_procs
+    procs = [ctx.Process(target=_bare_worker, args=((barrier, i * share, share, stored.atoms,
+                                                      stored.attrs["preprocessing"], stored.arrays,
+                                                      blas, chunk, out),))
+             for i in range(n_procs)]
+    for p in procs:
+        p.start()
+    times = [out.get() for _ in procs]
+    for p in procs:
+        p.join()
+    return max(times)
+
+
+# ---------------------------------------------------------------------------- flows
+def warm_dask_encode(url: str, dict_id: str, workers: int, scratch: str) -> dict:
+    """Encode through an existing local Dask cluster, after one warm-up run on a small array."""
+    from dask.distributed import LocalCluster
+
+    with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                      dashboard_address=":0", local_directory=scratch) as cluster:
+        run_encode(url, "warm", dict_id, "dask", workers, scratch, cluster.scheduler_address)
+        return run_encode(url, "sig", dict_id, "dask", workers, scratch, cluster.scheduler_address)
+
+
+def run_encode(url: str, name: str, dict_id: str, kind: str, workers: int, scratch: str,
+               address: str | None = None) -> dict:
+    from atomline.flows import encode_flow
+    from atomline.flows.runners import task_runner
+
+    runner = task_runner(kind, workers, address, dask_options={"local_directory": scratch})
+    t0 = time.perf_counter()
+    summary = encode_flow.with_options(task_runner=runner)(url, name, dict_id=dict_id, workers=workers,
+                                                           overwrite=True)
+    wall = time.perf_counter() - t0
+    return {"wall": wall, "rows": summary["records"], "task_seconds": summary["task_seconds"],
+            "phase": summary["seconds"], "encoded": summary["encoded"]}
+
+
+# The child's own high-water mark. Not getrusage's ru_maxrss: Linux carries the forking
+# parent's resident size into the child's maxrss across exec, which would report this
+# benchmark's process instead of the child.
+_PEAK = ("import re; peak = lambda: float(re.search(r'VmHWM:\\s+(\\d+)', "
+         "open('/proc/self/status').read()).group(1)) / 1024\n")
+
+
+def rss_of_cli_encode(url: str, name: str, dict_id: str, workers: int) -> float:
+    """Peak RSS (MiB) of an ``atomline encode`` process on ``data/<name>``."""
+    from prefect.settings import PREFECT_API_URL
+
+    code = (f"import sys; from atomline.flows.cli import main\n{_PEAK}"
+            f"rc = main(['encode', {url!r}, {name!r}, '--dictionary', {dict_id!r}, "
+            f"'--workers', '{workers}', '--overwrite', '--json']); "
+            "print('RSS', peak(), file=sys.stderr); sys.exit(rc)")
+    env = dict(os.environ, PREFECT_API_URL=PREFECT_API_URL.value())
+    done = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True)
+    if done.returncode != 0:
+        raise RuntimeError(done.stderr[-3000:])
+    line = [ln for ln in done.stderr.splitlines() if ln.startswith("RSS ")][-1]
+    return float(line.split()[1])
+
+
+def rss_of_stage_encode(url: str, name: str, dict_id: str, workers: int) -> tuple[float, float]:
+    """Peak RSS (MiB) of a process running only the encode stage in ``workers`` threads.
+
+    The same batches and BLAS limits as the flow, without Prefect, whose own peak (which
+    grows with the API's history) would otherwise hide the data path. Returns the peak
+    before encoding (imports, workspace, plan) and the peak after.
+    """
+    code = f"""
+import sys
+from concurrent.futures import ThreadPoolExecutor
+from atomline.flows.runners import blas_threads, plan_batches
+from atomline.stages import encode
+{_PEAK}
+prepared = encode.prepare_encode({url!r}, {name!r}, {dict_id!r}, overwrite=True)
+batches = plan_batches(prepared["pending"], {workers}, 4)
+before = peak()
+with ThreadPoolExecutor({workers}) as pool:
+    list(pool.map(lambda b: encode.encode_chunks({url!r}, {name!r}, {dict_id!r}, b,
+                                                 blas_threads=blas_threads({workers})), batches))
+print("RSS", before, peak())
+"""
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    if done.returncode != 0:
+        raise RuntimeError(done.stderr[-3000:])
+    line = [ln for ln in done.stdout.splitlines() if ln.startswith("RSS ")][-1]
+    return float(line.split()[1]), float(line.split()[2])
+
+
+def table(title: str, header: list[str], rows: list[list]) -> None:
+    print(f"\n{title}")
+    widths = [max(len(str(h)), *(len(str(r[i])) for r in rows)) for i, h in enumerate(header)]
+    print("  ".join(str(h).ljust(w) for h, w in zip(header, widths)))
+    print("  ".join("-" * w for w in widths))
+    for r in rows:
+        print("  ".join(str(c).ljust(w) for c, w in zip(r, widths)))
+    sys.stdout.flush()
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--rows", type=int, default=1_000_000, help="rows per runner measurement")
+    parser.add_argument("--rss-rows", type=int, default=200_000, help="1x rows for the RSS check")
+    parser.add_argument("--big-rows", type=int, default=10_000_000, help="rows of the large run (0: skip)")
+    parser.add_argument("--runners", default="threads,processes,dask,dask-warm",
+                        help="dask: a local cluster started by the runner; dask-warm: an existing one")
+    parser.add_argument("--keep", help="directory for the workspace (default: a temporary one, removed)")
+    args = parser.parse_args()
+
+    from prefect.testing.utilities import prefect_test_harness
+
+    for noisy in ("distributed", "distributed.scheduler", "distributed.nanny", "distributed.core",
+                  "distributed.worker", "distributed.http.proxy"):
+        logging.getLogger(noisy).setLevel(logging.ERROR)
+
+    from atomline.flows.runners import blas_threads
+    from atomline.stages.train import train_dictionary
+    from atomline.stages.workspace import Workspace
+
+    base = args.keep or tempfile.mkdtemp(prefix="atomline-bench-scale-")
+    url, scratch = os.path.join(base, "ws.zarr"), os.path.join(base, "dask")
+    os.makedirs(scratch, exist_ok=True)
+    print(f"atomline scale benchmark — {os.cpu_count()} cores, numpy {np.__version__}, workspace {url}")
+    print(f"records: {D}-dimensional, dictionary {K} atoms, OMP with {NONZERO} nonzeros")
+    with prefect_test_harness():
+        ws = Workspace.open(url, create=True)
+        t0 = time.perf_counter()
+        fill_records(ws, "sig", args.rows)
+        chunk = ws.describe_records("sig")["chunk_rows"]
+        print(f"wrote {args.rows:,} rows in {time.perf_counter() - t0:.1f} s "
+              f"({ws.describe_records('sig')['n_chunks']} chunks of {chunk} rows)")
+        dict_id = train_dictionary(ws, "sig", n_atoms=K, sample_patches=20_000, seed=0,
+                                   coder_options={"n_nonzero": NONZERO})["dict_id"]
+        stored = ws.load_dictionary(dict_id)
+
+        # Bare numpy: same coder work, same BLAS threads per worker as the flow gives it.
+        bare1 = bare_seconds(1, args.rows, stored, blas_threads(1), chunk)
+        bare2 = bare_seconds(2, args.rows, stored, blas_threads(2), chunk)
+        bare_speedup = bare1 / bare2
+        table("bare numpy processes (normalise + OMP, no I/O, no Prefect)",
+              ["processes", "BLAS threads each", "rows/s", "speed-up"],
+              [[1, blas_threads(1), f"{args.rows / bare1:,.0f}", "1.00"],
+               [2, blas_threads(2), f"{args.rows / bare2:,.0f}", f"{bare_speedup:.2f}"]])
+
+        fill_records(ws, "warm", 4 * chunk)
+        rows = []
+        overhead_rows = []
+        for kind in args.runners.split(","):
+            if kind == "dask-warm":  # a long-lived cluster: workers already imported everything
+                res = {w: warm_dask_encode(url, dict_id, w, scratch) for w in (1, 2)}
+            else:
+                res = {w: run_encode(url, "sig", dict_id, kind, w, scratch) for w in (1, 2)}
+            speedup = res[1]["wall"] / res[2]["wall"]
+            for w in (1, 2):
+                r = res[w]
+                share = 1 - r["task_seconds"] / (w * r["wall"])
+                phase_share = 1 - r["task_seconds"] / (w * r["phase"])
+                rows.append([kind, w, f"{r['rows'] / r['wall']:,.0f}", f"{r['rows'] / r['phase']:,.0f}",
+                             f"{speedup:.2f}" if w == 2 else "",
+                             f"{speedup / bare_speedup:.2f}" if w == 2 else ""])
+                overhead_rows.append([kind, w, f"{r['wall']:.1f}", f"{r['phase']:.1f}",
+                                      f"{r['task_seconds']:.1f}", f"{100 * share:.1f} %",
+                                      f"{100 * phase_share:.1f} %"])
+        table(f"encode flow, {args.rows:,} rows, default batches (4 per worker)",
+              ["runner", "workers", "rows/s (flow wall)", "rows/s (encode phase)", "speed-up 2/1",
+               "speed-up / bare (goal >= 0.9)"], rows)
+        table("orchestration share = 1 - task seconds / (workers x time) (goal <= 5 %)",
+              ["runner", "workers", "flow wall s", "encode phase s", "task s", "share of flow wall",
+               "share of encode phase"], overhead_rows)
+
+        n1 = args.rss_rows
+        fill_records(ws, "rss1", n1)
+        fill_records(ws, "rss10", 10 * n1)
+        rss1 = rss_of_cli_encode(url, "rss1", dict_id, 2)
+        rss10 = rss_of_cli_encode(url, "rss10", dict_id, 2)
+        (pre1, st1), (pre10, st10) = (rss_of_stage_encode(url, n, dict_id, 2) for n in ("rss1", "rss10"))
+        table("peak RSS, separate processes, 2 worker threads (goal: 10x rows within 10 %)",
+              ["rows", "`atomline encode` MiB", "ratio", "stage only: before MiB", "stage only: peak MiB",
+               "ratio"],
+              [[f"{n1:,}", f"{rss1:.0f}", "1.00", f"{pre1:.0f}", f"{st1:.0f}", "1.00"],
+               [f"{10 * n1:,}", f"{rss10:.0f}", f"{rss10 / rss1:.3f}", f"{pre10:.0f}", f"{st10:.0f}",
+                f"{st10 / st1:.3f}"]])
+
+        if args.big_rows:
+            t0 = time.perf_counter()
+            fill_records(ws, "big", args.big_rows)
+            written = time.perf_counter() - t0
+            big = run_encode(url, "big", dict_id, "threads", 2, scratch)
+            share = 1 - big["task_seconds"] / (2 * big["wall"])
+            table(f"large archive: {args.big_rows:,} rows x {D} (measured, not extrapolated)",
+                  ["runner", "workers", "write s", "encode flow s", "rows/s", "orchestration share"],
+                  [["threads", 2, f"{written:.0f}", f"{big['wall']:.1f}",
+                    f"{big['rows'] / big['wall']:,.0f}", f"{100 * share:.1f} %"]])
+    if not args.keep:
+        shutil.rmtree(base, ignore_errors=True)
+
+
+if __name__ == "__main__":
+    main()
