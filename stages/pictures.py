@@ -86,27 +86,62 @@ def atoms_png(atoms: np.ndarray, geometry: PatchGeometry, order: np.ndarray | No
     cols = int(np.ceil(np.sqrt(shown.size)))
     rows = int(np.ceil(shown.size / cols))
     fig = _figure()
-    axes = fig.subplots(rows, cols, squeeze=False)
-    channels = geometry.record_shape[2] if len(geometry.record_shape) == 3 else 1
-    for ax, i in zip(axes.ravel(), shown):
-        atom = atoms[i]
-        if geometry.n_spatial == 1:
-            ax.plot(atom, lw=0.8, color="tab:blue")
-            ax.axhline(0, lw=0.3, color="0.6")
-        else:
-            tile = atom.reshape(*geometry.size, channels)
-            scale = np.abs(tile).max() or 1.0
-            if channels == 3:
-                ax.imshow(np.clip(0.5 + 0.5 * tile / scale, 0, 1), interpolation="nearest")
-            else:
-                ax.imshow(tile[..., 0], cmap="gray", vmin=-scale, vmax=scale, interpolation="nearest")
-    for ax in axes.ravel():
-        ax.set_xticks([])
-        ax.set_yticks([])
-    for ax in axes.ravel()[shown.size:]:
-        ax.axis("off")
-    fig.suptitle(f"{title} ({shown.size} of {atoms.shape[0]} shown)")
+    ax = fig.add_axes((0.02, 0.02, 0.96, 0.9))
+    # One axes for all atoms (a mosaic or one polyline): 64 subplots would take seconds.
+    if geometry.n_spatial == 1:
+        x, y = _waveform_grid(atoms[shown], rows, cols)
+        ax.plot(x, y, lw=0.8, color="tab:blue")
+        ax.set_xlim(0, cols)
+        ax.set_ylim(rows, 0)
+        for r in range(rows + 1):
+            ax.axhline(r, lw=0.3, color="0.8")
+        for c in range(cols + 1):
+            ax.axvline(c, lw=0.3, color="0.8")
+    else:
+        channels = geometry.record_shape[2] if len(geometry.record_shape) == 3 else 1
+        tiles = atoms[shown].reshape(shown.size, *geometry.size, channels)
+        ax.imshow(_mosaic(tiles, rows, cols), interpolation="nearest",
+                  cmap=None if channels == 3 else "gray", vmin=0, vmax=1)
+    ax.set_xticks([])
+    ax.set_yticks([])
+    ax.set_title(f"{title} ({shown.size} of {atoms.shape[0]} shown, most used first)")
     return _png(fig)
+
+
+def _waveform_grid(atoms: np.ndarray, rows: int, cols: int) -> tuple[np.ndarray, np.ndarray]:
+    """One polyline (NaN-separated) placing atom ``i`` in cell ``(i // cols, i % cols)``.
+
+    Returns
+    -------
+    x, y : ndarray of shape (n_atoms * (d + 1),)
+        Coordinates in cell units; each waveform scaled to 90 % of its cell's height.
+    """
+    n, d = atoms.shape
+    scale = np.abs(atoms).max(axis=1, keepdims=True)
+    wave = 0.45 * atoms / np.where(scale > 0, scale, 1.0)
+    cell = np.arange(n)
+    x = (cell % cols)[:, None] + 0.05 + 0.9 * np.arange(d)[None, :] / max(d - 1, 1)
+    y = (cell // cols)[:, None] + 0.5 - wave  # image-like rows: first row at the top
+    pad = np.full((n, 1), np.nan)
+    return np.hstack([x, pad]).ravel(), np.hstack([y, pad]).ravel()
+
+
+def _mosaic(tiles: np.ndarray, rows: int, cols: int) -> np.ndarray:
+    """Tiles (n, h, w, c) scaled each to [0, 1] (0.5 = zero) on a grid with 1-pixel gaps.
+
+    Returns
+    -------
+    ndarray of shape (rows * (h + 1) + 1, cols * (w + 1) + 1) for one channel, with a
+    trailing axis of 3 for colour.
+    """
+    n, h, w, c = tiles.shape
+    scale = np.abs(tiles).reshape(n, -1).max(axis=1)
+    scaled = 0.5 + 0.5 * tiles / np.where(scale > 0, scale, 1.0)[:, None, None, None]
+    out = np.ones((rows * (h + 1) + 1, cols * (w + 1) + 1, c))
+    for i in range(n):  # at most MAX_ATOMS_DRAWN small tiles
+        r, q = divmod(i, cols)
+        out[1 + r * (h + 1): 1 + r * (h + 1) + h, 1 + q * (w + 1): 1 + q * (w + 1) + w] = scaled[i]
+    return out[..., 0] if c == 1 else out
 
 
 def usage_png(usage: np.ndarray, title: str = "atom usage") -> bytes:
