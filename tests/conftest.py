@@ -10,6 +10,8 @@ import uuid
 os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
 os.environ.setdefault("PREFECT_HOME", tempfile.mkdtemp(prefix="atomline-prefect-"))
 os.environ.setdefault("PREFECT_LOGGING_LEVEL", "WARNING")
+# The temporary API server can take long to start on a loaded two-core machine.
+os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "120")
 
 import numpy as np
 import pytest
