@@ -15,7 +15,8 @@ Example (runs with no Prefect server configured; Prefect starts a temporary one)
     print(report["outcome"], report["candidate"]["features"], report["candidate"]["raw"])
 """
 
-__all__ = ["train_flow", "encode_flow", "pool_flow", "evaluate_flow", "nightly_flow", "OUTCOMES"]
+__all__ = ["train_flow", "encode_flow", "pool_flow", "evaluate_flow", "nightly_flow", "OUTCOMES",
+           "STATE_NAMES"]
 
 
 def __getattr__(name: str):

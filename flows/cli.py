@@ -12,6 +12,9 @@ configured, Prefect starts a temporary one for the run (no set-up needed).
     atomline train|encode|pool|evaluate WS NAME    run one stage's flow
     atomline nightly WS NAME                 train → encode → pool → evaluate → promote
     atomline show WS                         what the workspace holds
+    atomline history WS [NAME]               accuracy of every evaluation, and the gate's decisions
+    atomline plots WS [--export DIR]         list the stored pictures, or write them as PNG files
+    atomline serve WS NAME --cron "0 2 * * *"   serve the nightly flow on a schedule (Prefect)
 """
 
 from __future__ import annotations
@@ -104,7 +107,8 @@ def _parser() -> argparse.ArgumentParser:
                  "append rows from a .npy file to data/NAME (later runs encode only the new chunks)")
     _ws_name(sp)
     sp.add_argument("file", help=".npy file of new rows, same row shape and dtype as data/NAME; streamed")
-    sp.add_argument("--labels", dest="labels_file", help=".npy file of their integer labels (required if NAME is labelled)")
+    sp.add_argument("--labels", dest="labels_file",
+                    help=".npy file of their integer labels (required if NAME is labelled)")
 
     sp = command("link-records", _run_link, _describe_records,
                  "use an existing Zarr array (any store URL) as data/NAME without copying it")
@@ -142,17 +146,29 @@ def _parser() -> argparse.ArgumentParser:
     sp = command("nightly", _run_nightly, _describe_nightly,
                  "train a candidate dictionary, encode, pool, evaluate, and promote it if it holds up")
     _ws_name(sp)
-    _train_options(sp)
-    _pool_options(sp)
-    _evaluation_options(sp)
-    sp.add_argument("--metric", choices=("accuracy", "macro_f1"), default="accuracy",
-                    help="score compared by the promotion gate (default: %(default)s)")
-    sp.add_argument("--tolerance", type=float, default=0.01,
-                    help="promote unless the candidate scores worse than the promoted one by more than this (default: %(default)s)")
-    sp.add_argument("--retrain", choices=("always", "if-missing", "never"), default="always",
-                    help="always: train a candidate every run; if-missing/never: keep the promoted "
-                         "dictionary and encode only new records (default: %(default)s)")
+    _nightly_options(sp)
     _runner_options(sp)
+
+    sp = command("serve", _run_serve, _describe_serve,
+                 "serve the nightly flow on a cron schedule with Prefect (runs until stopped)")
+    _ws_name(sp)
+    sp.add_argument("--cron", default="0 2 * * *", help="cron schedule (default: '%(default)s', 02:00 daily)")
+    sp.add_argument("--timezone", default="UTC", help="time zone of the schedule (default: %(default)s)")
+    sp.add_argument("--deployment", help="deployment name (default: atomline-nightly-NAME)")
+    sp.add_argument("--dry-run", action="store_true",
+                    help="build the deployment and print it, without serving")
+    _nightly_options(sp)
+    sp.add_argument("--workers", type=int, default=os.cpu_count() or 1,
+                    help="parallel workers per run (default: %(default)s)")
+
+    sp = command("history", _run_history, _describe_history,
+                 "the accuracy of every evaluation and the promotion gate's decisions")
+    sp.add_argument("workspace", help="workspace directory or URL")
+    sp.add_argument("name", nargs="?", help="only evaluations of data/NAME")
+
+    sp = command("plots", _run_plots, _describe_plots, "list the stored pictures, or export them as PNG files")
+    sp.add_argument("workspace", help="workspace directory or URL")
+    sp.add_argument("--export", metavar="DIR", help="write every picture to DIR/<run-id>/<name>.png")
 
     sp = command("show", _run_show, _describe_show, "list what a workspace holds")
     sp.add_argument("workspace", help="workspace directory or URL")
@@ -235,9 +251,54 @@ def _pool_params(args: argparse.Namespace) -> dict:
 
 def _evaluation_options(sp: argparse.ArgumentParser) -> None:
     sp.add_argument("--labels", help="labels array name (default: NAME)")
-    sp.add_argument("--test-fraction", type=float, default=0.25, help="held-out share (default: %(default)s)")
+    sp.add_argument("--folds", type=int, default=5, help="stratified cross-validation folds (default: %(default)s)")
+    sp.add_argument("--classifier", choices=("logistic", "linear-svm"), default="logistic",
+                    help="linear classifier on standardised features (default: %(default)s)")
+    sp.add_argument("--baselines", nargs="*", choices=("raw", "random_patches", "pca"),
+                    default=["raw", "random_patches", "pca"],
+                    help="feature sets compared with the sparse features (default: all three)")
+    sp.add_argument("--curve", type=float, nargs="*", default=[0.05, 0.15, 0.4],
+                    help="shares of the training rows on the learning curve; none to skip (default: %(default)s)")
+    sp.add_argument("--n-boot", type=int, default=2000, help="bootstrap resamples (default: %(default)s)")
     sp.add_argument("--max-rows", type=int, default=20_000,
                     help="labelled rows used at most, stratified sample (default: %(default)s)")
+    sp.add_argument("--class-names", nargs="+", help="names of the classes, in label order, for pictures")
+    sp.add_argument("--no-pictures", dest="pictures", action="store_false",
+                    help="do not render and store the pictures")
+
+
+def _evaluation_params(args: argparse.Namespace) -> dict:
+    return dict(labels=args.labels, folds=args.folds, classifier=args.classifier,
+                baselines=args.baselines, learning_curve=args.curve, n_boot=args.n_boot,
+                max_rows=args.max_rows, pictures=args.pictures, class_names=args.class_names)
+
+
+def _nightly_options(sp: argparse.ArgumentParser) -> None:
+    _train_options(sp)
+    _pool_options(sp)
+    _evaluation_options(sp)
+    sp.add_argument("--metric", choices=("accuracy", "balanced_accuracy", "macro_f1"), default="accuracy",
+                    help="score compared by the promotion gate (default: %(default)s)")
+    sp.add_argument("--tolerance", type=float, default=0.01,
+                    help="promote unless the candidate scores worse than the promoted one by more "
+                         "than this, or its interval reaches below it (default: %(default)s)")
+    sp.add_argument("--fail-on-regression", action="store_true",
+                    help="end a regressed run in a Failed state (default: Completed, named Regression)")
+    sp.add_argument("--retrain-on-drift", action="store_true",
+                    help="retrain only when rows from --drift-since on drifted from the earlier ones")
+    sp.add_argument("--drift-since", type=int, help="first new row for the drift check")
+    sp.add_argument("--retrain", choices=("always", "if-missing", "never"), default="always",
+                    help="always: train a candidate every run; if-missing/never: keep the promoted "
+                         "dictionary and encode only records it has not covered yet (default: %(default)s)")
+    sp.add_argument("--drift-threshold", type=float, default=0.2,
+                    help="relative change of reconstruction error or nonzeros that counts as drift (default: %(default)s)")
+
+
+def _nightly_params(args: argparse.Namespace) -> dict:
+    return dict(metric=args.metric, tolerance=args.tolerance, fail_on_regression=args.fail_on_regression,
+                retrain_on_drift=args.retrain_on_drift, drift_since=args.drift_since,
+                drift_threshold=args.drift_threshold, workers=args.workers, retrain=args.retrain,
+                **_evaluation_params(args), **_train_params(args), **_pool_params(args))
 
 
 def _runner_options(sp: argparse.ArgumentParser) -> None:
@@ -286,7 +347,8 @@ def _run_link(args):
 def _run_train(args):
     from atomline.flows import train_flow
 
-    return _with_runner(train_flow, args)(args.workspace, args.name, **_train_params(args))
+    with _progress(args.workspace, args.name, (), args.json, status="learning a dictionary"):
+        return _with_runner(train_flow, args)(args.workspace, args.name, **_train_params(args))
 
 
 def _run_encode(args):
@@ -312,20 +374,90 @@ def _run_pool(args):
 def _run_evaluate(args):
     from atomline.flows import evaluate_flow
 
-    return _with_runner(evaluate_flow, args)(args.workspace, args.name, dict_id=args.dictionary,
-                                             labels=args.labels, test_fraction=args.test_fraction,
-                                             max_rows=args.max_rows)
+    with _progress(args.workspace, args.name, (), args.json, status="evaluating"):
+        return _with_runner(evaluate_flow, args)(args.workspace, args.name, dict_id=args.dictionary,
+                                                 **_evaluation_params(args))
 
 
 def _run_nightly(args):
     from atomline.flows import nightly_flow
 
-    with _progress(args.workspace, args.name, ("codes", "features"), args.json):
-        return _with_runner(nightly_flow, args)(
-            args.workspace, args.name, labels=args.labels, metric=args.metric,
-            tolerance=args.tolerance, test_fraction=args.test_fraction, max_rows=args.max_rows,
-            workers=args.workers, batches_per_worker=args.batches_per_worker, retrain=args.retrain,
-            **_train_params(args), **_pool_params(args))
+    with _progress(args.workspace, args.name, ("codes", "features"), args.json, status="nightly run"):
+        state = _with_runner(nightly_flow, args)(args.workspace, args.name, return_state=True,
+                                                 batches_per_worker=args.batches_per_worker,
+                                                 **_nightly_params(args))
+    report = state.result(raise_on_failure=False)
+    report["state"] = {"type": state.type.value, "name": state.name, "message": state.message}
+    return report
+
+
+def serve_deployment(args: argparse.Namespace):
+    """The deployment ``atomline serve`` serves: the nightly flow, a cron schedule, parameters."""
+    from prefect.schedules import Cron
+
+    from atomline.flows import nightly_flow
+
+    params = dict(_nightly_params(args), workspace=args.workspace, records=args.name)
+    params = {k: list(v) if isinstance(v, tuple) else v for k, v in params.items()}
+    return nightly_flow.to_deployment(
+        name=args.deployment or f"atomline-nightly-{args.name}",
+        schedule=Cron(args.cron, timezone=args.timezone),
+        parameters=params,
+        description=f"atomline nightly flow over data/{args.name} of {args.workspace}",
+        tags=["atomline"],
+    )
+
+
+def _run_serve(args):
+    deployment = serve_deployment(args)
+    info = {"deployment": deployment.name, "flow": deployment.flow_name,
+            "schedules": [{"cron": s.schedule.cron, "timezone": s.schedule.timezone}
+                          for s in deployment.schedules or []],
+            "parameters": deployment.parameters, "served": not args.dry_run}
+    if not args.dry_run:
+        from prefect import serve
+
+        print(_describe_serve(info), file=sys.stderr)
+        serve(deployment)  # blocks: runs the flow on schedule until interrupted
+    return info
+
+
+def _run_history(args):
+    from atomline.stages.workspace import Workspace
+
+    ws = Workspace.open(args.workspace)
+    decided = {d["candidate_run"]: d for d in ws.decisions() if d.get("candidate_run")}
+    rows = []
+    for e in ws.evaluations():
+        if args.name and e["records"] != args.name:
+            continue
+        m = e["metrics"]
+        decision = decided.get(e["run_id"], {})
+        rows.append({
+            "run_id": e["run_id"], "created": e["created"], "records": e["records"], "tag": e.get("tag", ""),
+            "dict_id": e["dict_id"], "coder": e.get("coder"), "coder_options": e.get("coder_options"),
+            "pooling": e.get("pooling"), "records_fingerprint": e.get("records_fingerprint"),
+            "n_rows": e.get("n_rows"), "accuracy": m["features"]["accuracy"],
+            "macro_f1": m["features"]["macro_f1"],
+            "raw_accuracy": m.get("raw", {}).get("accuracy"),
+            "outcome": decision.get("outcome"),
+        })
+    return {"workspace": ws.url, "promoted": ws.promoted, "evaluations": rows, "decisions": ws.decisions()}
+
+
+def _run_plots(args):
+    from atomline.stages.workspace import Workspace
+
+    ws = Workspace.open(args.workspace)
+    pictures = ws.pictures()
+    if args.export:
+        for p in pictures:
+            target = os.path.join(args.export, p["report_id"], f"{p['name']}.png")
+            os.makedirs(os.path.dirname(target), exist_ok=True)
+            with open(target, "wb") as fh:
+                fh.write(ws.picture(p["path"]))
+            p["file"] = os.path.abspath(target)
+    return {"workspace": ws.url, "pictures": pictures}
 
 
 def _run_show(args):
@@ -345,9 +477,9 @@ def _run_demo(args):
         records, labels = vibration_records(args.records, seed=args.seed)
         ws.add_records("vibration", records, chunk_rows=250)
         ws.add_labels("vibration", labels)
-    with _progress(args.directory, "vibration", ("codes", "features"), args.json):
+    with _progress(args.directory, "vibration", ("codes", "features"), args.json, status="demo nightly run"):
         report = _with_runner(nightly_flow, args)(args.directory, "vibration", seed=args.seed,
-                                                  workers=args.workers,
+                                                  workers=args.workers, class_names=list(CLASS_NAMES),
                                                   batches_per_worker=args.batches_per_worker,
                                                   **DEMO_OPTIONS)
     dictionary = ws.load_dictionary(report["candidate_id"])
@@ -374,24 +506,38 @@ def _describe_stage(r: dict) -> str:
 
 
 def _describe_evaluation(r: dict) -> str:
-    lines = [f"evaluation {r['run_id']} of dictionary {r['dict_id']} ({r['n_train']} train / {r['n_test']} test rows)",
-             f"  sparse features: accuracy {r['features']['accuracy']:.3f}, macro-F1 {r['features']['macro_f1']:.3f}"]
-    if "raw" in r:
-        lines.append(f"  raw records:     accuracy {r['raw']['accuracy']:.3f}, macro-F1 {r['raw']['macro_f1']:.3f}")
+    from atomline.flows.artifacts import score_table
+
+    lines = [f"evaluation {r['run_id']} of dictionary {r['dict_id']} "
+             f"({r['n_rows']} labelled rows, {r['folds']}-fold cross-validation)"]
+    columns = [("set", "feature set", ""), ("accuracy", "accuracy", ".3f"),
+               ("balanced_accuracy", "balanced", ".3f"), ("macro_f1", "macro-F1", ".3f"),
+               ("features_minus_set", "features - set", "+.3f"), ("interval_95", "95% interval", "")]
+    lines += ["  " + line for line in _table(score_table(r), columns).splitlines()]
+    if r.get("pictures"):
+        lines.append(f"  pictures: {', '.join(r['pictures'])}")
     return "\n".join(lines)
 
 
 def _describe_nightly(r: dict) -> str:
     from atomline.flows import OUTCOMES
 
-    cand = r["candidate"]
-    lines = [f"nightly outcome: {r['outcome'].upper()} — {OUTCOMES[r['outcome']]}",
+    state = r.get("state", {})
+    lines = [f"nightly outcome: {r['outcome'].upper()} — {OUTCOMES[r['outcome']]}"
+             + (f"  [Prefect state {state['type']} '{state['name']}']" if state else ""),
              f"candidate dictionary {r['candidate_id']} (previously promoted: {r['previous_id']})",
-             "  " + _describe_stage(r["encode"]), "  " + _describe_stage(r["pool"]),
-             _describe_evaluation(cand)]
-    if r.get("promoted"):
-        prev = r["promoted"]["features"]
-        lines.append(f"  previously promoted: accuracy {prev['accuracy']:.3f}, macro-F1 {prev['macro_f1']:.3f}")
+             "  " + _describe_stage(r["encode"]), "  " + _describe_stage(r["pool"])]
+    if r.get("drift"):
+        d = r["drift"]
+        lines.append(f"  drift: reconstruction error {100 * d['error_change']:+.1f}%, nonzeros "
+                     f"{100 * d['nonzeros_change']:+.1f}% (threshold {100 * d['threshold']:.0f}%)")
+    if r.get("candidate"):
+        lines.append(_describe_evaluation(r["candidate"]))
+    if r.get("gate"):
+        g = r["gate"]
+        lines.append(f"  gate on {r['metric']}: candidate {g['a']:.3f} vs promoted {g['b']:.3f}, "
+                     f"difference {g['difference']:+.3f}, 95% interval [{g['low']:+.3f}, {g['high']:+.3f}], "
+                     f"tolerance {r['tolerance']}")
     lines.append(f"promoted dictionary now: {r['promoted_id']}")
     return "\n".join(lines)
 
@@ -409,7 +555,8 @@ def _describe_demo(r: dict) -> str:
         + (f" — {rate:,.0f} records/s" if rate else "") + f"; {enc['skipped']} chunks already done",
         f"  classes      {', '.join(r['classes'])}",
         f"  accuracy     raw samples {cand['raw']['accuracy']:.3f}  |  sparse features "
-        f"{cand['features']['accuracy']:.3f}  ({gain:+.1f} points, {cand['n_test']} test records)",
+        f"{cand['features']['accuracy']:.3f}  ({gain:+.1f} points, {cand['n_rows']} records, "
+        f"{cand['folds']}-fold)",
         f"  outcome      {r['outcome']}; promoted dictionary: {r['promoted_id']}",
         f"  outputs      {r['workspace']}  (atomline show {r['workspace']})",
         f"  total time   {r['seconds']:.1f} s",
@@ -433,8 +580,52 @@ def _describe_show(r: dict) -> str:
         lines.append(f"  dictionaries/{dict_id}: {info['n_atoms']} atoms, {info['method']}, {info['created']}")
     for path, info in r["outputs"].items():
         lines.append(f"  {path}: {info['chunks_done']}/{info['n_chunks']} chunks done")
-    lines.append(f"  evaluations: {r['evaluations']}")
+    lines.append(f"  evaluations: {r['evaluations']}, gate decisions: {r.get('decisions', 0)}")
+    latest = r.get("latest_evaluation")
+    if latest:
+        scores = ", ".join(f"{k} {v:.3f}" for k, v in latest["metrics"].items() if v is not None)
+        lines.append(f"  latest evaluation {latest['run_id']} of {latest['dict_id']}: accuracy {scores}")
+    pictures = r.get("pictures", [])
+    if pictures:
+        lines.append(f"  pictures ({len(pictures)}; export with atomline plots {r['url']} --export DIR):")
+        lines += [f"    {p['path']}  {p.get('title', '')}" for p in pictures]
     return "\n".join(lines)
+
+
+def _table(rows: list[dict], columns: list[tuple[str, str, str]]) -> str:
+    """Fixed-width text table; columns are (key, heading, format)."""
+    cells = [[h for _, h, _ in columns]]
+    for row in rows:
+        cells.append(["-" if row.get(k) is None else format(row[k], f) for k, _, f in columns])
+    widths = [max(len(c[i]) for c in cells) for i in range(len(columns))]
+    text = ["  ".join(c.ljust(w) for c, w in zip(line, widths)).rstrip() for line in cells]
+    text.insert(1, "  ".join("-" * w for w in widths))
+    return "\n".join(text)
+
+
+def _describe_history(r: dict) -> str:
+    if not r["evaluations"]:
+        return f"no evaluations in {r['workspace']} yet"
+    columns = [("created", "created", ""), ("records", "records", ""), ("tag", "tag", ""),
+               ("dict_id", "dictionary", ""), ("coder", "coder", ""), ("n_rows", "rows", "d"),
+               ("accuracy", "accuracy", ".3f"), ("macro_f1", "macro-F1", ".3f"),
+               ("raw_accuracy", "raw", ".3f"), ("outcome", "gate", "")]
+    return _table(r["evaluations"], columns) + f"\npromoted dictionary: {r['promoted']}"
+
+
+def _describe_plots(r: dict) -> str:
+    if not r["pictures"]:
+        return f"no pictures in {r['workspace']} yet (the evaluate and nightly flows render them)"
+    lines = [f"{p['path']}  {p.get('title', '')}  {p['bytes']:,} bytes"
+             + (f"  -> {p['file']}" if "file" in p else "") for p in r["pictures"]]
+    return "\n".join(lines)
+
+
+def _describe_serve(r: dict) -> str:
+    when = ", ".join(f"{s['cron']} ({s['timezone']})" for s in r["schedules"])
+    verb = "serving" if r["served"] else "would serve (dry run)"
+    return (f"{verb} deployment {r['deployment']} of flow {r['flow']} on schedule {when}; "
+            f"workspace {r['parameters']['workspace']}, records {r['parameters']['records']}")
 
 
 # ---------------------------------------------------------------------------- progress
@@ -445,8 +636,9 @@ class _progress:
     processes, a Dask cluster) and whichever process writes the chunks.
     """
 
-    def __init__(self, url: str, records: str, kinds: tuple[str, ...], silent: bool):
+    def __init__(self, url: str, records: str, kinds: tuple[str, ...], silent: bool, status: str = ""):
         self.url, self.records, self.kinds, self.silent = url, records, kinds, silent
+        self.status = status  # a spinner line with elapsed time, for steps without chunks
         self._stop = threading.Event()
 
     def __enter__(self):
@@ -458,6 +650,8 @@ class _progress:
                              TimeElapsedColumn(), transient=False)
         self._bar.start()
         self._tasks: dict[str, int] = {}
+        if self.status:
+            self._bar.add_task(self.status, total=None)  # indeterminate: a pulsing bar
         self._thread = threading.Thread(target=self._poll, daemon=True)
         self._thread.start()
         return self

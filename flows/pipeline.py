@@ -17,31 +17,54 @@ from __future__ import annotations
 
 import time
 
-from prefect import flow, get_run_logger
+from prefect import flow, get_run_logger, task
+from prefect.artifacts import create_markdown_artifact
+from prefect.cache_policies import NO_CACHE
+from prefect.events import emit_event
+from prefect.futures import as_completed
+from prefect.states import Completed, Failed, State
 
+from atomline.stages.drift import detect_drift
 from atomline.stages.errors import InputError, NotFound, problem
 from atomline.stages.encode import encode_task, prepare_encode
-from atomline.stages.evaluate import evaluate_task
+from atomline.stages.evaluate import (BASELINES, DEFAULT_CURVE, compare_evaluations, evaluate_task,
+                                      gate_decision)
+from atomline.stages.pictures import render_report
+from atomline.stages.scoring import SCORES
 from atomline.stages.pool import pool_task, prepare_pool
 from atomline.stages.train import train_task
 from atomline.stages.workspace import Workspace
 
+from .artifacts import ChunkProgress, artifact_key, publish_evaluation
 from .runners import blas_threads, check_reachable, plan_batches, task_runner
 
+#: Rendering the pictures of an evaluation as a Prefect task.
+render_task = task(render_report, name="render-pictures", cache_policy=NO_CACHE)
+
 __all__ = ["train_flow", "encode_flow", "pool_flow", "evaluate_flow", "nightly_flow", "OUTCOMES",
-           "RETRAIN"]
+           "STATE_NAMES", "RETRAIN"]
 
 #: What a nightly run can end with.
 OUTCOMES = {
     "first": "no dictionary was promoted yet; the candidate is promoted",
-    "promoted": "the candidate scored within tolerance of the promoted one, or better; promoted",
+    "promoted": "the candidate is not worse than the promoted one beyond the tolerance, "
+                "and its interval agrees; promoted",
     "unchanged": "the candidate is the promoted dictionary (same inputs); nothing to do",
-    "regression": "the candidate scored worse than the promoted one beyond tolerance; not promoted",
+    "inconclusive": "the candidate is within the tolerance but its interval reaches below it; "
+                    "not promoted",
+    "regression": "the candidate scored worse than the promoted one beyond the tolerance; "
+                  "not promoted",
+    "steady": "no drift beyond the threshold; no retrain, the promoted dictionary's features "
+              "were brought up to date",
     "kept": "retraining was off: the promoted dictionary was kept and only records it had "
             "not encoded yet were encoded and pooled",
 }
+#: The name of the state a nightly run ends in, per outcome.
+STATE_NAMES = {"first": "Promoted", "promoted": "Promoted", "unchanged": "Unchanged",
+               "inconclusive": "Inconclusive", "regression": "Regression", "steady": "Steady",
+               "kept": "Kept"}
 
-#: When the nightly flow trains a candidate dictionary.
+#: When the nightly flow trains a candidate dictionary (its ``retrain`` option).
 RETRAIN = {
     "always": "train a candidate on the current archive every run (appended rows change it)",
     "if-missing": "train only when no dictionary is promoted; otherwise keep the promoted one",
@@ -97,9 +120,13 @@ def encode_flow(workspace: str, records: str, dict_id: str | None = None, coder:
     logger.info("encode %s with %s: %d of %d chunks pending, %d batches",
                 records, dict_id, len(prepared["pending"]), prepared["n_chunks"], len(batches))
     start = time.perf_counter()
+    progress = ChunkProgress(records, len(prepared["pending"]), "encode")
     futures = [encode_task.submit(workspace, records, dict_id, b, blas_threads=blas_threads(workers))
                for b in batches]
-    results = [f.result() for f in futures]
+    results = []
+    for future in as_completed(futures):
+        results.append(future.result())
+        progress.advance(results[-1]["encoded"] + results[-1]["skipped"])
     summary = _summarise(results, prepared, "encoded", time.perf_counter() - start)
     summary.update(dict_id=dict_id, coder=prepared["coder"], coder_options=prepared["coder_options"])
     logger.info("encoded %d chunks, skipped %d already done", summary["encoded"], summary["skipped"])
@@ -127,16 +154,42 @@ def pool_flow(workspace: str, records: str, dict_id: str | None = None, reduce: 
 
 @flow(name="atomline-evaluate", task_runner=task_runner("threads", 1))
 def evaluate_flow(workspace: str, records: str, dict_id: str | None = None, labels: str | None = None,
-                  test_fraction: float = 0.25, max_rows: int = 20_000, C: float = 1.0,
-                  seed: int = 0, baseline: bool = True, tag: str = "") -> dict:
-    """Score a linear classifier on the pooled features and on the raw records."""
+                  folds: int = 5, classifier: str = "logistic", C: float = 1.0, max_rows: int = 20_000,
+                  seed: int = 0, baselines: list[str] | None = None,
+                  learning_curve: list[float] | None = None, n_boot: int = 2000, tag: str = "",
+                  pictures: bool = True, class_names: list[str] | None = None) -> dict:
+    """Score a linear classifier on the pooled features and on the baselines.
+
+    ``baselines`` and ``learning_curve`` default to the evaluate stage's
+    (``BASELINES``, ``DEFAULT_CURVE``); pass ``[]`` for none. Creates the markdown and
+    table artifacts and, with ``pictures``, stores the pictures in the workspace.
+    """
     dict_id = dict_id or _promoted(workspace)
-    manifest = evaluate_task(workspace, records, dict_id, labels=labels, test_fraction=test_fraction,
-                             max_rows=max_rows, C=C, seed=seed, baseline=baseline, tag=tag)
-    get_run_logger().info("evaluation %s: features %.3f, raw %s", manifest["run_id"],
-                          manifest["features"]["accuracy"],
-                          f"{manifest['raw']['accuracy']:.3f}" if "raw" in manifest else "-")
+    manifest = evaluate_task(workspace, records, dict_id, labels=labels,
+                             **_evaluation_options(folds, classifier, C, max_rows, seed, baselines,
+                                                   learning_curve, n_boot), tag=tag)
+    paths = render_task(workspace, manifest["run_id"], class_names) if pictures else []
+    manifest["pictures"] = paths
+    publish_evaluation(Workspace.open(workspace), manifest, records,
+                       title=f"atomline evaluation of {records}", picture_paths=paths)
+    _log_scores(get_run_logger(), manifest)
     return manifest
+
+
+def _evaluation_options(folds, classifier, C, max_rows, seed, baselines, learning_curve, n_boot) -> dict:
+    return dict(folds=folds, classifier=classifier, C=C, max_rows=max_rows, seed=seed,
+                baselines=tuple(BASELINES if baselines is None else baselines),
+                learning_curve=tuple(DEFAULT_CURVE if learning_curve is None else learning_curve),
+                n_boot=n_boot)
+
+
+def _log_scores(logger, manifest: dict) -> None:
+    logger.info("evaluation %s of %s: features accuracy %.3f", manifest["run_id"],
+                manifest["dict_id"], manifest["features"]["accuracy"])
+    for name, versus in manifest.get("versus", {}).items():
+        acc = versus["accuracy"]
+        logger.info("  versus %s: %+.3f accuracy, 95%% interval [%+.3f, %+.3f]", name,
+                    acc["difference"], acc["low"], acc["high"])
 
 
 @flow(name="atomline-nightly", task_runner=task_runner("threads", 2))
@@ -146,32 +199,59 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
                  learner_options: dict | None = None, preprocessing: dict | None = None,
                  sample_patches: int = 20_000, reduce: str = "max", split_sign: bool = True,
                  regions: int | list[int] = 4, metric: str = "accuracy", tolerance: float = 0.01,
-                 test_fraction: float = 0.25, max_rows: int = 20_000, seed: int = 0,
-                 workers: int = 2, batches_per_worker: int = 4, retrain: str = "always") -> dict:
+                 folds: int = 5, classifier: str = "logistic", C: float = 1.0,
+                 max_rows: int = 20_000, seed: int = 0, baselines: list[str] | None = None,
+                 learning_curve: list[float] | None = None, n_boot: int = 2000,
+                 pictures: bool = True, class_names: list[str] | None = None,
+                 retrain_on_drift: bool = False, drift_since: int | None = None,
+                 drift_threshold: float = 0.2, fail_on_regression: bool = False,
+                 workers: int = 2, batches_per_worker: int = 4, retrain: str = "always") -> State:
     """Train a candidate dictionary, encode, pool, evaluate, and promote it if it holds up.
 
-    The candidate is promoted when no dictionary is promoted yet, or when its score
-    (``metric``: ``accuracy`` or ``macro_f1``) is at least the promoted dictionary's minus
-    ``tolerance``; both are scored on the same seeded split. The pointer moves only after
-    the candidate's features and evaluation are complete.
+    **Gate.** The candidate and the promoted dictionary are evaluated on the same rows
+    and folds (same seed and ``max_rows``); ``d`` is the candidate's ``metric``
+    (``accuracy``, ``balanced_accuracy`` or ``macro_f1``) minus the promoted one's and
+    ``[low, high]`` its paired-bootstrap 95 % interval. Outcome (``OUTCOMES``):
+    ``regression`` when ``d < -tolerance``; ``promoted`` when ``d >= -tolerance`` and
+    ``low >= -tolerance``; ``inconclusive`` otherwise (see ``evaluate.gate_decision``).
+    The pointer moves only after the candidate's features and evaluation are complete.
+    Every decision is appended to the workspace (``Workspace.decisions``).
 
-    ``retrain`` (a key of :data:`RETRAIN`) decides whether a candidate is trained at all.
-    A candidate's id follows the archive's fingerprint, so with ``"always"`` appended rows
-    give a new candidate that encodes everything into its own codes group (the promoted
-    features stay readable, and are brought up to date incrementally for the gate). With
-    ``"if-missing"`` or ``"never"`` and a promoted dictionary, only the chunks the
-    promoted codes do not cover yet are encoded and pooled; the outcome is ``"kept"``.
+    **Drift.** With ``retrain_on_drift`` and a promoted dictionary, rows ``drift_since:``
+    are compared with rows ``:drift_since`` (``stages.drift``); below ``drift_threshold``
+    nothing is retrained (outcome ``steady``) and the promoted dictionary's features are
+    brought up to date.
+
+    **Retrain policy.** ``retrain`` (a key of :data:`RETRAIN`) decides whether a candidate
+    is trained at all. A candidate's id follows the archive's fingerprint, so with
+    ``"always"`` rows appended since the last run (``Workspace.append_records``) give a new
+    candidate, encoded whole into its own codes group while the promoted features stay
+    readable (and are brought up to date chunk by chunk for the gate). With
+    ``"if-missing"`` or ``"never"`` and a promoted dictionary, only the chunks its codes do
+    not cover yet are encoded and pooled; the outcome is ``kept``.
+
+    **What the run shows.** The flow run ends in a state named after the outcome
+    (``Promoted``, ``Regression``, …) with the outcome's meaning as its message: a
+    ``Completed`` state, or a ``Failed`` one for a regression when
+    ``fail_on_regression`` (so automations and notifications on failed runs fire). A
+    regression also emits the Prefect event ``atomline.nightly.regression``. Markdown
+    and table artifacts summarise the evaluation; pictures are stored in the workspace.
 
     Returns
     -------
-    dict
-        ``outcome`` (a key of :data:`OUTCOMES`), ``candidate`` and ``promoted``
-        evaluations, the train/encode/pool manifests, and the promoted id after the run.
+    State
+        Calling the flow returns the report dict (the state's data): ``outcome`` (a key
+        of :data:`OUTCOMES`), ``candidate`` and ``promoted`` evaluations, ``gate`` (the
+        comparison), the train/encode/pool manifests, ``drift``, ``pictures``, and the
+        promoted id after the run. With ``fail_on_regression`` a regression raises
+        instead; call with ``return_state=True`` to read the report from the state.
     """
     logger = get_run_logger()
-    if metric not in ("accuracy", "macro_f1"):
-        raise InputError(problem("metric", "'accuracy' or 'macro_f1'", repr(metric),
-                                 "Pick one of the two."))
+    if metric not in SCORES:
+        raise InputError(problem("metric", f"one of {SCORES}", repr(metric), "Pick a listed score."))
+    gate_decision({"difference": 0.0, "low": 0.0}, tolerance)  # refuses a negative tolerance early
+    evaluation = dict(labels=labels, **_evaluation_options(folds, classifier, C, max_rows, seed,
+                                                            baselines, learning_curve, n_boot))
     if retrain not in RETRAIN:
         raise InputError(problem("retrain", f"one of {sorted(RETRAIN)}", repr(retrain),
                                  "Pick a listed policy."))
@@ -188,15 +268,22 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
                               regions=regions, workers=workers, batches_per_worker=batches_per_worker)
         return enc, pooled
 
-    evaluation = dict(labels=labels, test_fraction=test_fraction, max_rows=max_rows, seed=seed)
+    report = {"previous_id": previous, "metric": metric, "tolerance": tolerance, "drift": None,
+              "candidate": None, "promoted": None, "gate": None, "pictures": [], "retrain": retrain}
     if retrain != "always" and previous is not None:
-        encoded, pooled = features_for(previous)
-        kept_eval = evaluate_task(workspace, records, previous, tag="promoted", **evaluation)
-        logger.info("nightly outcome: kept — %s", OUTCOMES["kept"])
-        return {"candidate_id": previous, "previous_id": previous, "train": None,
-                "encode": encoded, "pool": pooled, "candidate": kept_eval, "promoted": None,
-                "metric": metric, "tolerance": tolerance, "outcome": "kept",
-                "promoted_id": previous, "retrain": retrain}
+        report["encode"], report["pool"] = features_for(previous)
+        report.update(candidate_id=None, outcome="kept")
+        return _finish(workspace, records, report, fail_on_regression)
+    if retrain_on_drift and previous is not None and drift_since is not None:
+        report["drift"] = detect_drift(workspace, records, previous, drift_since,
+                                       threshold=drift_threshold, seed=seed)
+        logger.info("drift of rows %d: error %+.1f%%, nonzeros %+.1f%% (threshold %.0f%%)",
+                    drift_since, 100 * report["drift"]["error_change"],
+                    100 * report["drift"]["nonzeros_change"], 100 * drift_threshold)
+        if not report["drift"]["drifted"]:
+            report["encode"], report["pool"] = features_for(previous)
+            report.update(candidate_id=None, outcome="steady")
+            return _finish(workspace, records, report, fail_on_regression)
 
     trained = train_flow.fn(workspace, records, n_atoms=n_atoms, patch_size=patch_size, stride=stride,
                             method=method, coder=coder, coder_options=coder_options,
@@ -205,27 +292,75 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
     candidate_id = trained["dict_id"]
     encoded, pooled = features_for(candidate_id)
     cand_eval = evaluate_task(workspace, records, candidate_id, tag="candidate", **evaluation)
-    report = {"candidate_id": candidate_id, "previous_id": previous, "train": trained,
-              "encode": encoded, "pool": pooled, "candidate": cand_eval, "promoted": None,
-              "metric": metric, "tolerance": tolerance, "retrain": retrain}
+    report.update(candidate_id=candidate_id, train=trained, encode=encoded, pool=pooled,
+                  candidate=cand_eval)
     if previous is None:
         outcome = "first"
     elif previous == candidate_id:
         outcome = "unchanged"
     else:
         features_for(previous)
-        prev_eval = evaluate_task(workspace, records, previous, tag="promoted", baseline=False,
-                                  **evaluation)
-        report["promoted"] = prev_eval
-        ok = cand_eval["features"][metric] >= prev_eval["features"][metric] - tolerance
-        outcome = "promoted" if ok else "regression"
-    if outcome in ("first", "promoted"):
-        Workspace.open(workspace).promote(candidate_id)
+        prev_eval = evaluate_task(workspace, records, previous, tag="promoted",
+                                  **dict(evaluation, baselines=(), learning_curve=()))
+        comparison = compare_evaluations(workspace, cand_eval["run_id"], prev_eval["run_id"],
+                                         n_boot=n_boot, seed=seed)
+        report.update(promoted=prev_eval, gate=comparison[metric])
+        outcome = gate_decision(comparison[metric], tolerance)
     report["outcome"] = outcome
-    report["promoted_id"] = Workspace.open(workspace).promoted
-    log = logger.warning if outcome == "regression" else logger.info
-    log("nightly outcome: %s — %s", outcome, OUTCOMES[outcome])
-    return report
+    if pictures:
+        report["pictures"] = render_task(workspace, cand_eval["run_id"], class_names)
+    return _finish(workspace, records, report, fail_on_regression)
+
+
+def _finish(workspace: str, records: str, report: dict, fail_on_regression: bool) -> State:
+    """Promote when due, record the decision, publish artifacts, and end in a named state."""
+    logger = get_run_logger()
+    outcome = report["outcome"]
+    ws = Workspace.open(workspace)
+    if outcome in ("first", "promoted"):
+        ws.promote(report["candidate_id"])
+    report["promoted_id"] = ws.promoted
+    cand = report["candidate"]
+    ws.append_decision({
+        "records": records, "outcome": outcome, "candidate_id": report["candidate_id"],
+        "previous_id": report["previous_id"], "promoted_id": report["promoted_id"],
+        "promoted": outcome in ("first", "promoted"), "metric": report["metric"],
+        "tolerance": report["tolerance"], "gate": report["gate"], "drift": report["drift"],
+        "candidate_run": cand["run_id"] if cand else None,
+        "promoted_run": report["promoted"]["run_id"] if report["promoted"] else None,
+    })
+    message = f"{outcome}: {OUTCOMES[outcome]}"
+    lines = [f"**Outcome: {STATE_NAMES[outcome]}** — {OUTCOMES[outcome]}.",
+             f"Candidate `{report['candidate_id']}`, previously promoted `{report['previous_id']}`, "
+             f"promoted now `{report['promoted_id']}`."]
+    gate = report["gate"]
+    if gate:
+        lines.append(f"Gate on {report['metric']}: candidate {gate['a']:.3f}, promoted {gate['b']:.3f}, "
+                     f"difference {gate['difference']:+.3f}, 95% interval [{gate['low']:+.3f}, "
+                     f"{gate['high']:+.3f}], tolerance {report['tolerance']}.")
+    if report["drift"]:
+        d = report["drift"]
+        lines.append(f"Drift: reconstruction error {100 * d['error_change']:+.1f}%, nonzeros "
+                     f"{100 * d['nonzeros_change']:+.1f}% (threshold {100 * d['threshold']:.0f}%).")
+    if cand:
+        report["artifacts"] = publish_evaluation(ws, cand, records, title=f"atomline nightly: {records}",
+                                                 lines=lines, picture_paths=report["pictures"])
+        _log_scores(logger, cand)
+    else:
+        report["artifacts"] = {"summary": str(create_markdown_artifact(
+            "\n\n".join([f"# atomline nightly: {records}"] + lines),
+            key=artifact_key(records, "summary"), description="atomline nightly"))}
+    if outcome == "regression":
+        logger.warning("nightly outcome: %s", message)
+        emit_event("atomline.nightly.regression",
+                   resource={"prefect.resource.id": f"atomline.workspace.{records}",
+                             "atomline.workspace": str(workspace)},
+                   payload={"candidate_id": report["candidate_id"], "promoted_id": report["promoted_id"],
+                            "gate": report["gate"]})
+    else:
+        logger.info("nightly outcome: %s", message)
+    state = Failed if outcome == "regression" and fail_on_regression else Completed
+    return state(data=report, name=STATE_NAMES[outcome], message=message)
 
 
 def _promoted(workspace: str) -> str:

@@ -1,66 +1,172 @@
 """The evaluate stage: does a linear classifier do better on the sparse features?
 
-Protocol: the labelled records are split once, stratified and seeded, into a training and
-a test part; a scikit-learn logistic regression is fitted on standardised features and
-scored on the test part (accuracy and macro-F1). The same classifier on the raw records,
-flattened, is the baseline. The split depends only on the labels and the seed, so two
-dictionaries evaluated with the same seed are compared on the same test rows.
+Protocol
+--------
+1. **Rows.** All labelled records, or a stratified seeded sample of ``max_rows`` of them
+   (so memory stays bounded on a large archive). The rows depend only on the labels,
+   ``max_rows`` and the seed.
+2. **Folds.** Stratified ``folds``-fold cross-validation, shuffled with the seed. Every
+   row is predicted exactly once, by the model that did not see it ("out-of-fold"
+   predictions); scores are computed on those predictions over all rows.
+3. **Classifier.** Standardisation fitted on the training folds, then a linear
+   scikit-learn classifier: ``"logistic"`` (``LogisticRegression``, the default) or
+   ``"linear-svm"`` (``LinearSVC``), both L2-regularised with strength ``1/C``.
+4. **Feature sets**, all through the same rows, folds and classifier:
 
-Each evaluation is appended to ``evaluations/<run-id>`` and never rewritten.
+   ``features``        the pooled sparse codes ``features/<dict-id>/<records>``;
+   ``raw``             the records themselves, flattened;
+   ``random_patches``  a dictionary of the same size made of patches drawn at random
+                       from the records (normalised like the training patches),
+                       coded with the same coder and pooled the same way;
+   ``pca``             the leading ``min(k, d)`` principal directions of a patch sample
+                       as the dictionary, coded and pooled the same way.
+
+   The two dictionary baselines are built here from the records with
+   :func:`baseline_atoms` (plain numpy), then coded and pooled with the project's own
+   kernels; like the learned dictionary they never see labels.
+5. **Scores**: accuracy, balanced accuracy, macro-F1 (see :mod:`.scoring`), a per-class
+   report and the confusion matrix of every set; per-fold accuracies.
+6. **Intervals**: for every baseline, a paired percentile bootstrap over the rows of
+   the difference ``features − baseline`` (:func:`.scoring.paired_bootstrap`). The
+   interval reflects which rows were sampled, not the randomness of training.
+7. **Learning curve**: the same folds with each training part cut (stratified, seeded)
+   to a share of its rows; accuracy of ``features`` and ``raw`` against the number of
+   labelled training rows.
+
+Each evaluation is appended to ``evaluations/<run-id>`` (never rewritten) with which
+dictionary, coder, pooling and data it measured, and its out-of-fold predictions, so two
+evaluations on the same rows can be compared later (:func:`compare_evaluations`, used by
+the nightly promotion gate, :func:`gate_decision`).
 
 ``evaluate_task`` is :func:`evaluate_features` as a Prefect task.
 """
 
 from __future__ import annotations
 
+from typing import Iterator
+
 import numpy as np
 from prefect import task
 from prefect.cache_policies import NO_CACHE
 from sklearn.linear_model import LogisticRegression
-from sklearn.metrics import accuracy_score, confusion_matrix, f1_score
-from sklearn.model_selection import train_test_split
-from sklearn.pipeline import make_pipeline
+from sklearn.metrics import precision_recall_fscore_support
+from sklearn.model_selection import StratifiedKFold, train_test_split
+from sklearn.pipeline import Pipeline, make_pipeline
 from sklearn.preprocessing import StandardScaler
+from sklearn.svm import LinearSVC
+from threadpoolctl import threadpool_limits
 
+from .coding import code, gram
+from .encode import codes_path
 from .errors import InputError, problem
-from .pool import features_path
-from .workspace import Workspace, iter_row_chunks
+from .pool import features_path, pool_codes, region_of_patches
+from .prep import Normaliser, PatchGeometry
+from .scoring import SCORES, confusion, paired_bootstrap, scores_from_confusion
+from .workspace import Workspace, fingerprint_params, iter_row_chunks
 
-__all__ = ["evaluate_features", "evaluate_task", "score_linear"]
+__all__ = ["evaluate_features", "evaluate_task", "cross_predict", "make_classifier",
+           "baseline_atoms", "compare_evaluations", "gate_decision", "CLASSIFIERS",
+           "BASELINES", "GATE_OUTCOMES"]
+
+CLASSIFIERS = ("logistic", "linear-svm")
+BASELINES = ("raw", "random_patches", "pca")
+#: Shares of each fold's training rows on the learning curve (the full share is the
+#: main result and is added to the curve).
+DEFAULT_CURVE = (0.05, 0.15, 0.4)
+#: Patches drawn from the evaluated rows to build the random-patch and PCA dictionaries.
+_BASELINE_SAMPLE = 20_000
 
 
-def score_linear(
-    X_train: np.ndarray, y_train: np.ndarray, X_test: np.ndarray, y_test: np.ndarray,
-    *, C: float = 1.0, seed: int = 0,
-) -> dict:
-    """Fit a standardised logistic regression and score it.
+def make_classifier(classifier: str = "logistic", *, C: float = 1.0, seed: int = 0) -> Pipeline:
+    """The evaluation's classifier: standardisation, then a linear model.
 
     Parameters
     ----------
-    X_train : ndarray of shape (n_train, F)
-    y_train : ndarray of shape (n_train,)
-    X_test : ndarray of shape (n_test, F)
-    y_test : ndarray of shape (n_test,)
+    classifier : {"logistic", "linear-svm"}
     C : float
         Inverse L2 regularisation strength.
     seed : int
 
     Returns
     -------
-    dict
-        ``accuracy``, ``macro_f1`` (floats) and ``confusion`` (ndarray of shape (c, c),
-        rows true class, columns predicted, classes in sorted order).
+    sklearn.pipeline.Pipeline
     """
-    model = make_pipeline(StandardScaler(), LogisticRegression(C=C, max_iter=2000,
-                                                               random_state=seed))
-    model.fit(X_train, y_train)
-    pred = model.predict(X_test)
-    classes = np.unique(np.concatenate([y_train, y_test]))
-    return {
-        "accuracy": float(accuracy_score(y_test, pred)),
-        "macro_f1": float(f1_score(y_test, pred, average="macro")),
-        "confusion": confusion_matrix(y_test, pred, labels=classes),
-    }
+    if classifier == "logistic":
+        model = LogisticRegression(C=C, max_iter=2000, random_state=seed)
+    elif classifier == "linear-svm":
+        model = LinearSVC(C=C, max_iter=5000, random_state=seed)
+    else:
+        raise InputError(problem("classifier", f"one of {CLASSIFIERS}", repr(classifier),
+                                 "Pick a listed classifier."))
+    return make_pipeline(StandardScaler(), model)
+
+
+def cross_predict(
+    X: np.ndarray, y: np.ndarray, folds: list[tuple[np.ndarray, np.ndarray]], *,
+    classifier: str = "logistic", C: float = 1.0, seed: int = 0,
+) -> tuple[np.ndarray, list[float]]:
+    """Out-of-fold predictions.
+
+    Parameters
+    ----------
+    X : ndarray of shape (n, F)
+    y : ndarray of shape (n,), int
+    folds : list of (train positions, test positions)
+        Positions into ``X``; the test parts cover every row once.
+    classifier, C, seed
+        As :func:`make_classifier`.
+
+    Returns
+    -------
+    pred : ndarray of shape (n,), int64
+    fold_accuracy : list of float
+        Accuracy on each fold's test part.
+    """
+    pred = np.full(y.shape[0], -1, dtype=np.int64)
+    fold_accuracy = []
+    for train, test in folds:
+        model = make_classifier(classifier, C=C, seed=seed).fit(X[train], y[train])
+        pred[test] = model.predict(X[test])
+        fold_accuracy.append(float(np.mean(pred[test] == y[test])))
+    return pred, fold_accuracy
+
+
+def baseline_atoms(kind: str, patches: np.ndarray, n_atoms: int, seed: int = 0) -> np.ndarray:
+    """A dictionary that needs no learning, for the baselines.
+
+    Parameters
+    ----------
+    kind : {"random_patches", "pca"}
+        ``random_patches``: ``n_atoms`` rows of ``patches`` drawn without replacement
+        (seeded) among those of non-zero norm, scaled to unit norm.
+        ``pca``: the leading ``min(n_atoms, d)`` right singular vectors of the centred
+        patches (unit norm, orthogonal).
+    patches : ndarray of shape (m, d)
+        Preprocessed patches.
+    n_atoms : int
+    seed : int
+
+    Returns
+    -------
+    ndarray of shape (k', d), float64
+        ``k' = n_atoms`` for random patches, ``min(n_atoms, d, m)`` for PCA.
+    """
+    patches = np.asarray(patches, dtype=np.float64)
+    if kind == "random_patches":
+        norms = np.linalg.norm(patches, axis=1)
+        usable = np.flatnonzero(norms > 1e-8 * max(float(norms.max(initial=0)), 1e-300))
+        if usable.size == 0:
+            raise InputError(problem("baseline patches", "some non-constant patches",
+                                     "only zero patches", "Check the records."))
+        rng = np.random.default_rng(seed)
+        pick = rng.choice(usable, size=n_atoms, replace=usable.size < n_atoms)
+        return patches[pick] / norms[pick, None]
+    if kind == "pca":
+        centred = patches - patches.mean(axis=0)
+        _, _, vt = np.linalg.svd(centred, full_matrices=False)
+        return vt[: min(n_atoms, vt.shape[0])]
+    raise InputError(problem("baseline dictionary", "'random_patches' or 'pca'", repr(kind),
+                             "Pick a listed baseline."))
 
 
 def evaluate_features(
@@ -69,14 +175,18 @@ def evaluate_features(
     dict_id: str,
     *,
     labels: str | None = None,
-    test_fraction: float = 0.25,
-    max_rows: int = 20_000,
+    folds: int = 5,
+    classifier: str = "logistic",
     C: float = 1.0,
+    max_rows: int = 20_000,
     seed: int = 0,
-    baseline: bool = True,
+    baselines: tuple[str, ...] | list[str] = BASELINES,
+    learning_curve: tuple[float, ...] | list[float] = DEFAULT_CURVE,
+    n_boot: int = 2000,
     tag: str = "",
+    blas_threads: int | None = 1,
 ) -> dict:
-    """Evaluate pooled features against the raw-record baseline and record the result.
+    """Evaluate pooled features against the baselines and append the result.
 
     Parameters
     ----------
@@ -86,89 +196,305 @@ def evaluate_features(
         Features ``features/<dict_id>/<records>`` must be complete.
     labels : str, optional
         Name of the labels array; defaults to ``records``.
-    test_fraction : float
-        Share of labelled rows held out for scoring.
-    max_rows : int
-        At most this many labelled rows (a stratified seeded subsample), so the
-        classifier's memory stays bounded on a large archive.
+    folds : int
+        Number of stratified folds (≥ 2); every class needs at least this many rows.
+    classifier : {"logistic", "linear-svm"}
     C : float
+    max_rows : int
+        At most this many labelled rows (stratified seeded sample).
     seed : int
-        Seeds the split and the subsample.
-    baseline : bool
-        Also score the raw records.
+        Seeds the row sample, the folds, the baselines and the bootstrap.
+    baselines : sequence of str
+        Any of :data:`BASELINES`; empty for none.
+    learning_curve : sequence of float
+        Shares in (0, 1) of each fold's training rows; empty for no curve.
+    n_boot : int
+        Bootstrap resamples for the intervals.
     tag : str
         Free text stored with the evaluation (e.g. ``"candidate"``).
+    blas_threads : int, optional
+        BLAS threads while fitting and coding; ``None`` leaves the library's default.
+        The classifiers' matrices are small, so one thread loses little and avoids
+        oversubscribing cores shared with other workers (on the 2-core test machine under
+        load, one evaluation of the digits took ~3 s with one thread and ~30 s with two).
 
     Returns
     -------
     dict
-        ``run_id``, ``dict_id``, ``features`` and ``raw`` metric dicts (accuracy,
-        macro_f1), ``n_train``, ``n_test``, ``coder``, ``pooling``.
+        ``run_id``, ``dict_id``, ``n_rows``, ``folds``, ``coder``, ``pooling``; one
+        score dict per feature set (``features``, ``raw``, …: accuracy,
+        balanced_accuracy, macro_f1, fold_accuracy); ``versus`` (per baseline, per
+        score: difference features − baseline with its interval); ``learning_curve``.
     """
     ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    unknown = sorted(set(baselines) - set(BASELINES))
+    if unknown:
+        raise InputError(problem("baselines", f"a subset of {BASELINES}", str(unknown),
+                                 "Drop the unknown names."))
+    if any(not 0 < s < 1 for s in learning_curve):
+        raise InputError(problem("learning_curve", "shares strictly between 0 and 1",
+                                 str(list(learning_curve)), "Use e.g. 0.1, 0.25, 0.5."))
+    make_classifier(classifier)  # refuse an unknown classifier before any work
     out = ws.output(features_path(dict_id, records))
     if not out.complete:
         raise InputError(problem(features_path(dict_id, records), "complete features",
                                  f"{int((~out.done_flags()).sum())} chunk(s) not pooled",
                                  "Run the encode and pool flows first."))
-    y = ws.labels(labels or records)
-    if out.n_rows != y.shape[0]:  # records grew (append_records) since these features
-        raise InputError(problem(features_path(dict_id, records), f"features for all {y.shape[0]} records",
+    labels_name = labels or records
+    y_all = ws.labels(labels_name)
+    if out.n_rows != y_all.shape[0]:  # records grew (append_records) since these features
+        raise InputError(problem(features_path(dict_id, records), f"features for all {y_all.shape[0]} records",
                                  f"features for {out.n_rows}", "Run the encode and pool flows again."))
-    rows = _labelled_rows(y, max_rows, seed)
-    train_i, test_i = train_test_split(rows, test_size=test_fraction, stratify=y[rows],
-                                       random_state=seed)
-    train_i, test_i = np.sort(train_i), np.sort(test_i)
-    features = _take_rows(out.group["values"], rows)
-    tr, te = np.searchsorted(rows, train_i), np.searchsorted(rows, test_i)
-    result = {"features": score_linear(features[tr], y[train_i], features[te], y[test_i],
-                                       C=C, seed=seed)}
-    if baseline:
-        raw = _take_rows(ws.records(records), rows).reshape(len(rows), -1)
-        result["raw"] = score_linear(raw[tr], y[train_i], raw[te], y[test_i], C=C, seed=seed)
+    rows = _labelled_rows(y_all, max_rows, seed, folds)
+    classes, y = np.unique(y_all[rows], return_inverse=True)
+    n_classes = classes.size
+    splitter = StratifiedKFold(n_splits=folds, shuffle=True, random_state=seed)
+    fold_parts = list(splitter.split(np.zeros(rows.size), y))
+    fit = dict(classifier=classifier, C=C, seed=seed)
+
+    predictions: dict[str, np.ndarray] = {}
+    fold_scores: dict[str, list[float]] = {}
+    curve_inputs: dict[str, np.ndarray] = {}
+    sets = ("features",) + tuple(b for b in BASELINES if b in baselines)
+    with threadpool_limits(limits=blas_threads):
+        for name in sets:
+            X = _feature_set(ws, name, records, dict_id, rows, seed)
+            predictions[name], fold_scores[name] = cross_predict(X, y, fold_parts, **fit)
+            if learning_curve and name in ("features", "raw"):
+                curve_inputs[name] = _curve(X, y, fold_parts, learning_curve, seed, fit)
+            del X  # one feature set in memory at a time
+
+    metrics, per_class, arrays = {}, {}, {"rows": rows}
+    for name, pred in predictions.items():
+        conf = confusion(y, pred, n_classes)
+        metrics[name] = {k: float(v) for k, v in scores_from_confusion(conf).items()}
+        metrics[name]["fold_accuracy"] = fold_scores[name]
+        per_class[name] = _per_class(y, pred, classes)
+        arrays[f"pred_{name}"] = classes[pred]
+        arrays[f"confusion_{name}"] = conf
+    versus = {b: paired_bootstrap(y, predictions["features"], predictions[b], n_classes,
+                                  n_boot=n_boot, seed=seed)
+              for b in sets[1:]}
+    curve = _curve_report(curve_inputs, metrics, fold_parts, learning_curve)
+
     fattrs = out.attrs
+    cattrs = ws.output(codes_path(dict_id, records)).attrs
     attrs = {
         "records": records,
+        "labels": labels_name,
         "dict_id": dict_id,
+        "records_fingerprint": ws.records_fingerprint(records),
+        "dictionary_fingerprint": cattrs["dictionary_fingerprint"],
         "features_fingerprint": fattrs["fingerprint"],
+        "rows_fingerprint": fingerprint_params({"rows": rows.tolist(), "y": y_all[rows].tolist()}),
         "coder": fattrs["coder"],
+        "coder_options": cattrs["params"]["coder_options"],
         "pooling": fattrs["params"],
-        "protocol": {"classifier": "logistic-regression", "C": C,
-                     "test_fraction": test_fraction, "seed": seed, "max_rows": max_rows},
-        "n_train": int(len(train_i)),
-        "n_test": int(len(test_i)),
+        "protocol": {"classifier": classifier, "C": C, "folds": folds, "seed": seed,
+                     "max_rows": max_rows, "n_boot": n_boot},
+        "classes": classes.tolist(),
+        "n_rows": int(rows.size),
         "tag": tag,
-        "metrics": {k: {m: v[m] for m in ("accuracy", "macro_f1")} for k, v in result.items()},
+        "metrics": metrics,
+        "per_class": per_class,
+        "versus": versus,
+        "learning_curve": curve,
     }
-    run_id = ws.append_evaluation(attrs, {f"confusion_{k}": v["confusion"]
-                                          for k, v in result.items()})
-    manifest = {"run_id": run_id, "dict_id": dict_id, "n_train": attrs["n_train"],
-                "n_test": attrs["n_test"], "coder": attrs["coder"], "pooling": attrs["pooling"]}
-    manifest.update(attrs["metrics"])
+    run_id = ws.append_evaluation(attrs, arrays)
+    manifest = {"run_id": run_id, "dict_id": dict_id, "n_rows": attrs["n_rows"], "folds": folds,
+                "coder": attrs["coder"], "pooling": attrs["pooling"], "tag": tag,
+                "versus": versus, "learning_curve": curve}
+    manifest.update(metrics)
     return manifest
 
 
-def _labelled_rows(y: np.ndarray, max_rows: int, seed: int) -> np.ndarray:
+def compare_evaluations(
+    workspace: Workspace | str, run_a: str, run_b: str, *, n_boot: int = 2000, seed: int = 0,
+) -> dict[str, dict[str, float]]:
+    """Paired bootstrap of the features' scores of two evaluations on the same rows.
+
+    Parameters
+    ----------
+    workspace : Workspace or str
+    run_a, run_b : str
+        Evaluation run ids; both must have scored the same rows with the same labels
+        (same ``rows_fingerprint``), e.g. two dictionaries evaluated with the same seed.
+    n_boot, seed
+        As :func:`.scoring.paired_bootstrap`.
+
+    Returns
+    -------
+    dict
+        Per score: ``a``, ``b``, ``difference`` (a − b), ``low``, ``high``.
+    """
+    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    info = {e["run_id"]: e for e in ws.evaluations() if e["run_id"] in (run_a, run_b)}
+    for run in (run_a, run_b):
+        if run not in info:
+            raise InputError(problem(f"evaluations/{run}", "a complete evaluation", "none",
+                                     "Pass run ids from the evaluation history."))
+    if info[run_a]["rows_fingerprint"] != info[run_b]["rows_fingerprint"]:
+        raise InputError(problem(f"evaluations {run_a} and {run_b}", "the same rows and labels",
+                                 "different rows (other seed, max_rows, or data)",
+                                 "Evaluate both with the same seed and max_rows."))
+    a, b = ws.evaluation_arrays(run_a), ws.evaluation_arrays(run_b)
+    classes = np.asarray(info[run_a]["classes"])
+    y = np.searchsorted(classes, ws.labels(info[run_a]["labels"])[a["rows"]])
+    code_of = lambda pred: np.searchsorted(classes, pred)  # noqa: E731 - two uses below
+    return paired_bootstrap(y, code_of(a["pred_features"]), code_of(b["pred_features"]),
+                            classes.size, n_boot=n_boot, seed=seed)
+
+
+#: The promotion gate's verdicts on a candidate compared with the promoted dictionary.
+GATE_OUTCOMES = {
+    "promoted": "not worse than the promoted dictionary beyond the tolerance, and the "
+                "interval's lower end agrees",
+    "inconclusive": "within the tolerance, but the interval reaches below it: the evidence "
+                    "is too thin to replace the promoted dictionary",
+    "regression": "worse than the promoted dictionary by more than the tolerance",
+}
+
+
+def gate_decision(comparison: dict[str, float], tolerance: float) -> str:
+    """Decide promotion from a paired comparison (candidate = a, promoted = b).
+
+    With ``d`` the candidate's score minus the promoted one's and ``[low, high]`` its
+    bootstrap interval:
+
+    * ``regression`` when ``d < -tolerance``;
+    * ``promoted`` when ``d >= -tolerance`` and ``low >= -tolerance`` (a non-inferiority
+      test with margin ``tolerance`` at the interval's level);
+    * ``inconclusive`` otherwise.
+
+    Parameters
+    ----------
+    comparison : dict
+        One score's entry of :func:`compare_evaluations` (``difference``, ``low``).
+    tolerance : float
+        Margin, ≥ 0, in score units (0.01 = one accuracy point).
+
+    Returns
+    -------
+    str
+        A key of :data:`GATE_OUTCOMES`.
+    """
+    if tolerance < 0:
+        raise InputError(problem("tolerance", "a margin ≥ 0", str(tolerance), "Use e.g. 0.01."))
+    if comparison["difference"] < -tolerance:
+        return "regression"
+    return "promoted" if comparison["low"] >= -tolerance else "inconclusive"
+
+
+# ---------------------------------------------------------------------------- helpers
+def _labelled_rows(y: np.ndarray, max_rows: int, seed: int, folds: int) -> np.ndarray:
     """Sorted row numbers to use: all rows, or a stratified seeded subsample."""
+    if folds < 2:
+        raise InputError(problem("folds", "at least 2", str(folds), "Use e.g. 5 folds."))
     classes, counts = np.unique(y, return_counts=True)
-    if classes.size < 2 or counts.min() < 2:
-        raise InputError(problem("labels", "at least two classes with two rows each",
+    if classes.size < 2 or counts.min() < folds:
+        raise InputError(problem("labels", f"at least two classes with {folds} rows each",
                                  f"class counts {dict(zip(classes.tolist(), counts.tolist()))}",
-                                 "Label more records."))
+                                 "Label more records or use fewer folds."))
     rows = np.arange(y.shape[0])
     if y.shape[0] > max_rows:
         rows, _ = train_test_split(rows, train_size=max_rows, stratify=y, random_state=seed)
     return np.sort(rows)
 
 
-def _take_rows(arr, rows: np.ndarray) -> np.ndarray:
-    """Read the given sorted rows chunk by chunk (never the whole array at once)."""
-    parts = []
+def _row_blocks(arr, rows: np.ndarray) -> Iterator[np.ndarray]:
+    """The given sorted rows of ``arr``, one block per row chunk that holds some."""
     for _, sl in iter_row_chunks(arr):
         inside = rows[(rows >= sl.start) & (rows < sl.stop)]
         if inside.size:
-            parts.append(np.asarray(arr[sl])[inside - sl.start])
-    return np.concatenate(parts)
+            yield np.asarray(arr[sl])[inside - sl.start]
+
+
+def _take_rows(arr, rows: np.ndarray) -> np.ndarray:
+    """Read the given sorted rows chunk by chunk (never the whole array at once)."""
+    return np.concatenate(list(_row_blocks(arr, rows)))
+
+
+def _feature_set(ws: Workspace, name: str, records: str, dict_id: str, rows: np.ndarray,
+                 seed: int) -> np.ndarray:
+    """ndarray of shape (len(rows), F_name), float32: one feature set of the rows."""
+    if name == "features":
+        return _take_rows(ws.output(features_path(dict_id, records)).group["values"], rows)
+    arr = ws.records(records)
+    if name == "raw":
+        return _take_rows(arr, rows).reshape(rows.size, -1).astype(np.float32)
+    return _dictionary_baseline(ws, name, arr, records, dict_id, rows, seed)
+
+
+def _dictionary_baseline(ws: Workspace, kind: str, arr, records: str, dict_id: str,
+                         rows: np.ndarray, seed: int) -> np.ndarray:
+    """Features from a random-patch or PCA dictionary, coded and pooled like the real ones."""
+    stored = ws.load_dictionary(dict_id)
+    cattrs = ws.output(codes_path(dict_id, records)).attrs
+    pooling = ws.output(features_path(dict_id, records)).attrs["params"]
+    geometry = PatchGeometry.from_attrs(stored.attrs["geometry"])
+    normaliser = Normaliser.from_stored(stored.attrs["preprocessing"], stored.arrays)
+    rng = np.random.default_rng(seed)
+    P = geometry.patches_per_record
+    n_sample_rows = min(rows.size, max(1, -(-_BASELINE_SAMPLE // P) * 2))
+    sample_rows = np.sort(rng.choice(rows, size=n_sample_rows, replace=False))
+    patches = normaliser.apply(geometry.extract(_take_rows(arr, sample_rows)).astype(np.float64))
+    if patches.shape[0] > _BASELINE_SAMPLE:
+        patches = patches[rng.choice(patches.shape[0], _BASELINE_SAMPLE, replace=False)]
+    atoms = baseline_atoms(kind, patches, stored.atoms.shape[0], seed)
+    coder, options = cattrs["params"]["coder"], dict(cattrs["params"]["coder_options"])
+    if "n_nonzero" in options:
+        options["n_nonzero"] = min(options["n_nonzero"], atoms.shape[0])
+    region, R = region_of_patches(geometry.grid, pooling["regions"])
+    blocks = []
+    for block in _row_blocks(arr, rows):
+        X = normaliser.apply(geometry.extract(block))
+        W = atoms.astype(X.dtype)
+        extra = {"gram": gram(W)} if coder == "omp" else {}
+        codes = code(X, W, coder, **options, **extra)
+        blocks.append(pool_codes(codes.index, codes.value, n_atoms=W.shape[0],
+                                 patch_region=region, n_regions=R,
+                                 reduce=pooling["reduce"], split_sign=pooling["split_sign"]))
+    return np.concatenate(blocks)
+
+
+def _per_class(y: np.ndarray, pred: np.ndarray, classes: np.ndarray) -> dict:
+    """Precision, recall, F1 and support per class (keys are the class labels)."""
+    p, r, f, s = precision_recall_fscore_support(y, pred, labels=np.arange(classes.size),
+                                                 zero_division=0)
+    return {str(c): {"precision": float(p[i]), "recall": float(r[i]), "f1": float(f[i]),
+                     "support": int(s[i])} for i, c in enumerate(classes.tolist())}
+
+
+def _curve(X: np.ndarray, y: np.ndarray, fold_parts: list, shares, seed: int, fit: dict) -> np.ndarray:
+    """ndarray of shape (len(shares), 2): mean training rows and mean accuracy per share."""
+    out = np.zeros((len(shares), 2))
+    n_classes = np.unique(y).size
+    for i, share in enumerate(shares):
+        sizes, scores = [], []
+        for train, test in fold_parts:
+            n_keep = max(int(round(share * train.size)), 2 * n_classes)
+            if n_keep >= train.size:
+                kept = train
+            else:
+                kept, _ = train_test_split(train, train_size=n_keep, stratify=y[train],
+                                           random_state=seed)
+            model = make_classifier(**fit).fit(X[kept], y[kept])
+            scores.append(float(np.mean(model.predict(X[test]) == y[test])))
+            sizes.append(kept.size)
+        out[i] = np.mean(sizes), np.mean(scores)
+    return out
+
+
+def _curve_report(inputs: dict[str, np.ndarray], metrics: dict, fold_parts: list, shares) -> dict:
+    """Plain-JSON learning curve: shares, training rows, accuracy per set (full share last)."""
+    if not inputs:
+        return {}
+    full_rows = float(np.mean([train.size for train, _ in fold_parts]))
+    report = {"shares": [float(s) for s in shares] + [1.0],
+              "train_rows": [float(v) for v in inputs["features"][:, 0]] + [full_rows]}
+    for name, values in inputs.items():
+        report[name] = [float(v) for v in values[:, 1]] + [float(np.mean(metrics[name]["fold_accuracy"]))]
+    return report
 
 
 #: The evaluate stage as a Prefect task.

@@ -10,6 +10,8 @@ This is the only module that knows the layout::
                               count (rows,) int32, done (n_chunks,) uint8
     features/<dict-id>/<name>/values (n, F) float32, done (n_chunks,) uint8
     evaluations/<run-id>/     one group per evaluation (append-only)
+    decisions/<id>/           one group per promotion-gate decision (append-only, attrs)
+    reports/<run-id>/<name>   pictures: uint8 arrays holding PNG files' bytes
 
 The root group's attributes carry the layout version and the pointer to the promoted
 dictionary. A whole run is one URL: a local directory, or any fsspec URL such as
@@ -780,6 +782,85 @@ class Workspace:
         g = self._node(f"evaluations/{run_id}", "evaluation")
         return {k: np.asarray(g[k][:]) for k in g.array_keys()}
 
+    # ------------------------------------------------------------------ decisions
+    def append_decision(self, attrs: dict) -> str:
+        """Record one promotion-gate decision under ``decisions/<id>`` (append-only).
+
+        Parameters
+        ----------
+        attrs : dict
+            Plain JSON: outcome, candidate and promoted ids, the evaluations compared.
+
+        Returns
+        -------
+        str
+            The new decision id.
+        """
+        stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y%m%dT%H%M%S%f")
+        decision_id = f"g{stamp}-{os.urandom(3).hex()}"
+        g = self.root.require_group("decisions").create_group(decision_id)
+        g.attrs.update(_plain(dict(attrs, decision_id=decision_id, created=_now())))
+        g.attrs["complete"] = True
+        return decision_id
+
+    def decisions(self) -> list[dict]:
+        """Attributes of every recorded gate decision, oldest first."""
+        if "decisions" not in self.root:
+            return []
+        out = [dict(self.root[f"decisions/{k}"].attrs) for k in self.root["decisions"].group_keys()]
+        return sorted((a for a in out if a.get("complete")), key=lambda a: a["decision_id"])
+
+    # ------------------------------------------------------------------ pictures
+    def save_picture(self, report_id: str, name: str, png: bytes, attrs: dict) -> str:
+        """Store a PNG picture as bytes under ``reports/<report_id>/<name>``.
+
+        Pictures live in the same store as everything else (a uint8 Zarr array holding
+        the PNG file's bytes), so they travel with the workspace on any fsspec URL.
+
+        Parameters
+        ----------
+        report_id : str
+            Usually the evaluation run id the picture belongs to.
+        name : str
+        png : bytes
+            A complete PNG file.
+        attrs : dict
+            Plain JSON (title, width, height, …); ``media_type`` is added.
+
+        Returns
+        -------
+        str
+            The picture's path in the workspace.
+        """
+        path = f"reports/{_check_name(report_id, 'report id')}/{_check_name(name, 'picture name')}"
+        if not png.startswith(b"\x89PNG"):
+            raise InputError(problem(path, "PNG bytes", f"{png[:8]!r}", "Render the picture as PNG."))
+        self._refuse_existing(path, False)
+        self.root.require_group("reports").require_group(report_id)
+        arr = self.root.create_array(path, data=np.frombuffer(png, dtype=np.uint8))
+        arr.attrs.update(_plain(dict(attrs, media_type="image/png", created=_now())))
+        return path
+
+    def pictures(self) -> list[dict]:
+        """Every stored picture: ``path``, ``report_id``, ``name``, ``bytes`` and its attrs."""
+        if "reports" not in self.root:
+            return []
+        out = []
+        for report_id in sorted(self.root["reports"].group_keys()):
+            group = self.root[f"reports/{report_id}"]
+            for name in sorted(group.array_keys()):
+                arr = group[name]
+                out.append(dict(arr.attrs, path=f"reports/{report_id}/{name}", report_id=report_id,
+                                name=name, bytes=int(arr.shape[0])))
+        return out
+
+    def picture(self, path: str) -> bytes:
+        """The PNG bytes of a stored picture (a path from :meth:`pictures`)."""
+        if not path.startswith("reports/"):
+            raise NotFound(problem(path, "a picture path under reports/", path,
+                                   "List them with Workspace.pictures()."))
+        return np.asarray(self._node(path, "picture")[:]).tobytes()
+
     # ------------------------------------------------------------------ listing
     def summary(self) -> dict:
         """What the workspace holds, as plain JSON."""
@@ -800,9 +881,18 @@ class Workspace:
                     flags = out.done_flags()
                     outputs[f"{top}/{dict_id}/{name}"] = {"chunks_done": int(flags.sum()),
                                                           "n_chunks": int(flags.size)}
+        evaluations = self.evaluations()
+        latest = None
+        if evaluations:
+            e = evaluations[-1]
+            latest = {"run_id": e["run_id"], "dict_id": e["dict_id"], "tag": e.get("tag", ""),
+                      "metrics": {k: v.get("accuracy") for k, v in e["metrics"].items()}}
         return {"url": self.url, "layout": LAYOUT_VERSION, "promoted": self.promoted,
                 "records": data, "dictionaries": dicts, "outputs": outputs,
-                "evaluations": len(self.evaluations())}
+                "evaluations": len(evaluations), "latest_evaluation": latest,
+                "decisions": len(self.decisions()),
+                "pictures": [{k: p[k] for k in ("path", "title", "bytes") if k in p}
+                             for p in self.pictures()]}
 
     # ------------------------------------------------------------------ helpers
     def _node(self, path: str, what: str) -> Any:

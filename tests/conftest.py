@@ -10,6 +10,8 @@ import uuid
 os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
 os.environ.setdefault("PREFECT_HOME", tempfile.mkdtemp(prefix="atomline-prefect-"))
 os.environ.setdefault("PREFECT_LOGGING_LEVEL", "WARNING")
+# The temporary API server can take long to start on a loaded two-core machine.
+os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "120")
 
 import numpy as np
 import pytest
@@ -64,3 +66,26 @@ def unit_atoms(k: int, d: int, seed: int = 0) -> np.ndarray:
     rng = np.random.default_rng(seed)
     W = rng.standard_normal((k, d))
     return W / np.linalg.norm(W, axis=1, keepdims=True)
+
+
+DIGITS_TRAIN = dict(n_atoms=64, patch_size=4, stride=1, sample_patches=10_000, seed=0,
+                    coder_options={"n_nonzero": 3})
+
+
+@pytest.fixture(scope="session")
+def digits_workspace():
+    """scikit-learn's bundled handwritten digits (1797 images of 8×8, an open data set) in a
+    workspace, with a dictionary trained, encoded and pooled by the stages (no Prefect)."""
+    from sklearn.datasets import load_digits
+
+    from atomline.stages import encode, pool, train
+    from atomline.stages.workspace import Workspace
+
+    digits = load_digits()
+    ws = Workspace.open(f"memory://digits-{uuid.uuid4().hex}", create=True)
+    ws.add_records("digits", digits.images.astype(np.float32), chunk_rows=300)
+    ws.add_labels("digits", digits.target)
+    dict_id = train.train_dictionary(ws, "digits", **DIGITS_TRAIN)["dict_id"]
+    encode.encode_chunks(ws, "digits", dict_id, encode.prepare_encode(ws, "digits", dict_id)["pending"])
+    pool.pool_chunks(ws, "digits", dict_id, pool.prepare_pool(ws, "digits", dict_id, regions=2)["pending"])
+    return ws, dict_id

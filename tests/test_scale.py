@@ -23,7 +23,8 @@ from atomline.stages.errors import InputError, LayoutError, NotFound
 from atomline.stages.workspace import STORAGE_OPTIONS_ENV, Workspace, resolve_storage_options
 
 NIGHTLY = dict(n_atoms=32, patch_size=64, stride=32, sample_patches=3000, regions=2,
-               coder_options={"n_nonzero": 4}, workers=2)
+               coder_options={"n_nonzero": 4}, workers=2, learning_curve=[], n_boot=200,
+               pictures=False)
 
 
 # ---------------------------------------------------------------------------- helpers
@@ -139,13 +140,13 @@ def test_flows_on_s3_through_storage_options(s3_endpoint, demo_small):
             url, "vib", dict_id=dict_id, workers=2)
         pooled = pool_flow.with_options(task_runner=task_runner("threads", 2))(
             url, "vib", dict_id=dict_id, regions=2, workers=2)
-        evaluation = evaluate_flow(url, "vib", dict_id=dict_id)
+        evaluation = evaluate_flow(url, "vib", dict_id=dict_id, learning_curve=[], n_boot=200)
     finally:
         for w, level in zip(watched, levels):
             w.removeHandler(handler)
             w.setLevel(level)
     assert encoded["encoded"] == pooled["pooled"] == 6
-    assert evaluation["n_train"] + evaluation["n_test"] == 360
+    assert evaluation["n_rows"] == 360
 
     # The same stages on an in-memory workspace give the same codes and features.
     reference = _reference_encode(X, y, ws.load_dictionary(dict_id), 60, 2)
@@ -253,7 +254,6 @@ def test_nightly_after_append_encodes_only_new_chunks(demo_small, memory_url):
     assert again["outcome"] == "kept" and again["promoted_id"] == dict_id
     assert (again["encode"]["encoded"], again["encode"]["skipped"]) == (5, 10)
     assert (again["pool"]["pooled"], again["pool"]["skipped"]) == (5, 10)
-    assert again["candidate"]["n_train"] + again["candidate"]["n_test"] == 600
 
     reference = _reference_encode(X, y, ws.load_dictionary(dict_id), 40, NIGHTLY["regions"])
     got = _arrays(ws, dict_id, "vib")
@@ -267,7 +267,7 @@ def test_nightly_after_append_encodes_only_new_chunks(demo_small, memory_url):
     assert retrained["candidate_id"] != dict_id
     assert retrained["encode"]["encoded"] == 15
     assert Workspace.open(memory_url).output(encode.codes_path(dict_id, "vib")).complete
-    assert retrained["outcome"] in ("promoted", "regression")
+    assert retrained["outcome"] in ("promoted", "inconclusive", "regression")
 
 
 @pytest.mark.usefixtures("prefect_harness")

@@ -128,13 +128,14 @@ def test_pool_and_evaluate_wait_for_their_inputs(demo_small, memory_url):
 def test_evaluations_are_appended(demo_small, trained):
     ws, dict_id = trained
     _run_all(ws, dict_id, lambda p: [p])
-    first = evaluate.evaluate_features(ws, "vib", dict_id, seed=0)
-    second = evaluate.evaluate_features(ws, "vib", dict_id, seed=0, baseline=False)
+    light = dict(seed=0, learning_curve=(), n_boot=100)
+    first = evaluate.evaluate_features(ws, "vib", dict_id, baselines=("raw",), **light)
+    second = evaluate.evaluate_features(ws, "vib", dict_id, baselines=(), **light)
     history = ws.evaluations()
     assert [h["run_id"] for h in history][-2:] == [first["run_id"], second["run_id"]]
-    # Same split, same classifier: the same score twice.
+    # Same folds, same classifier: the same score twice.
     assert first["features"] == second["features"]
     assert "raw" in first and "raw" not in second
     conf = ws.evaluation_arrays(first["run_id"])["confusion_features"]
-    assert conf.sum() == first["n_test"]
+    assert conf.sum() == first["n_rows"]
     assert np.trace(conf) / conf.sum() == pytest.approx(first["features"]["accuracy"])

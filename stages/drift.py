@@ -1,0 +1,117 @@
+"""Drift: do newly appended records still fit the dictionary as well as the old ones?
+
+For a range of rows, a seeded sample of their patches is normalised like the training
+patches and coded with the dictionary's coder; two numbers describe how well they fit:
+
+* ``error`` — the mean relative reconstruction error ``‖x − Wᵀz‖² / ‖x‖²`` over patches
+  of non-zero norm;
+* ``nonzeros`` — the mean number of nonzero coefficients per patch.
+
+:func:`compare_drift` sets the new rows' numbers against a reference range (the rows the
+dictionary was trained on): the rows have *drifted* when the error grew by more than
+``threshold`` (relative) or the nonzeros moved by more than ``threshold`` (relative).
+The nightly flow can retrain only then (``retrain_on_drift``).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .coding import code
+from .errors import InputError, problem
+from .prep import Normaliser, PatchGeometry
+from .workspace import Workspace, iter_row_chunks
+
+__all__ = ["measure_fit", "compare_drift", "detect_drift"]
+
+
+def measure_fit(workspace: Workspace | str, records: str, dict_id: str, rows: slice, *,
+                max_patches: int = 20_000, seed: int = 0) -> dict:
+    """Reconstruction error and nonzeros of a row range under a dictionary.
+
+    Parameters
+    ----------
+    workspace : Workspace or str
+    records, dict_id : str
+    rows : slice
+        Row range ``start:stop`` of ``data/<records>`` (step 1).
+    max_patches : int
+        Patches coded at most (a seeded uniform sample); bounds memory and time.
+    seed : int
+
+    Returns
+    -------
+    dict
+        ``{"rows": [start, stop], "patches": int, "error": float, "nonzeros": float}``
+    """
+    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    arr = ws.records(records)
+    start, stop, step = rows.indices(arr.shape[0])
+    if step != 1 or stop <= start:
+        raise InputError(problem(f"rows of data/{records}", "a non-empty range with step 1",
+                                 f"{start}:{stop}:{step}", "Pass e.g. slice(old_count, None)."))
+    stored = ws.load_dictionary(dict_id)
+    geometry = PatchGeometry.from_attrs(stored.attrs["geometry"])
+    normaliser = Normaliser.from_stored(stored.attrs["preprocessing"], stored.arrays)
+    coder, options = stored.attrs["coder"], dict(stored.attrs["coder_options"])
+    rng = np.random.default_rng(seed)
+    P = geometry.patches_per_record
+    n_rows = min(stop - start, max(1, -(-max_patches // P)))
+    chosen = np.sort(rng.choice(np.arange(start, stop), size=n_rows, replace=False))
+    blocks = []
+    for _, sl in iter_row_chunks(arr):
+        inside = chosen[(chosen >= sl.start) & (chosen < sl.stop)]
+        if inside.size:
+            blocks.append(np.asarray(arr[sl])[inside - sl.start])
+    X = normaliser.apply(geometry.extract(np.concatenate(blocks)).astype(np.float64))
+    if X.shape[0] > max_patches:
+        X = X[np.sort(rng.choice(X.shape[0], size=max_patches, replace=False))]
+    codes = code(X, stored.atoms, coder, **options)
+    residual = X - codes.dense() @ stored.atoms
+    energy = np.einsum("ij,ij->i", X, X)
+    keep = energy > 0
+    error = np.einsum("ij,ij->i", residual, residual)[keep] / energy[keep]
+    nonzeros = np.count_nonzero(codes.dense(), axis=1)
+    return {"rows": [start, stop], "patches": int(X.shape[0]),
+            "error": float(error.mean()) if error.size else 0.0,
+            "nonzeros": float(nonzeros.mean())}
+
+
+def compare_drift(new: dict, reference: dict, threshold: float = 0.2) -> dict:
+    """Decide whether new rows drifted away from the reference rows.
+
+    Parameters
+    ----------
+    new, reference : dict
+        Results of :func:`measure_fit`.
+    threshold : float
+        Largest relative change tolerated in error and in nonzeros.
+
+    Returns
+    -------
+    dict
+        ``error_change`` and ``nonzeros_change`` (relative, new/reference − 1),
+        ``threshold`` and ``drifted`` (bool).
+    """
+    if threshold < 0:
+        raise InputError(problem("drift threshold", "≥ 0", str(threshold), "Use e.g. 0.2."))
+    tiny = np.finfo(float).tiny
+    error_change = new["error"] / max(reference["error"], tiny) - 1.0
+    nonzeros_change = new["nonzeros"] / max(reference["nonzeros"], tiny) - 1.0
+    return {"error_change": float(error_change), "nonzeros_change": float(nonzeros_change),
+            "threshold": float(threshold),
+            "drifted": bool(error_change > threshold or abs(nonzeros_change) > threshold)}
+
+
+def detect_drift(workspace: Workspace | str, records: str, dict_id: str, since: int, *,
+                 threshold: float = 0.2, max_patches: int = 20_000, seed: int = 0) -> dict:
+    """Rows ``since:`` (new) against rows ``:since`` (those the dictionary was trained on).
+
+    Returns
+    -------
+    dict
+        ``{"reference": measure_fit(...), "new": measure_fit(...), **compare_drift(...)}``
+    """
+    reference = measure_fit(workspace, records, dict_id, slice(0, since), max_patches=max_patches, seed=seed)
+    new = measure_fit(workspace, records, dict_id, slice(since, None), max_patches=max_patches, seed=seed)
+    return {"reference": reference, "new": new, **compare_drift(new, reference, threshold)}
