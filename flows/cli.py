@@ -109,12 +109,14 @@ def _parser() -> argparse.ArgumentParser:
     sp = command("train", _run_train, None, "learn a dictionary from a sample of data/NAME")
     _ws_name(sp)
     _train_options(sp)
+    _fault_options(sp, bad_chunks=False)
 
     sp = command("encode", _run_encode, _describe_stage, "sparse-code every chunk of data/NAME (resumes)")
     _ws_name(sp)
     sp.add_argument("--dictionary", help="dictionary id (default: the promoted one)")
     _coder_options(sp, default=None)
     sp.add_argument("--overwrite", action="store_true", help="replace codes made from other inputs")
+    _fault_options(sp)
     _runner_options(sp)
 
     sp = command("pool", _run_pool, _describe_stage, "pool the codes of data/NAME into per-record features (resumes)")
@@ -122,6 +124,7 @@ def _parser() -> argparse.ArgumentParser:
     sp.add_argument("--dictionary", help="dictionary id (default: the promoted one)")
     _pool_options(sp)
     sp.add_argument("--overwrite", action="store_true", help="replace features made with other options")
+    _fault_options(sp, bad_chunks=False)
     _runner_options(sp)
 
     sp = command("evaluate", _run_evaluate, _describe_evaluation,
@@ -140,11 +143,22 @@ def _parser() -> argparse.ArgumentParser:
                     help="score compared by the promotion gate (default: %(default)s)")
     sp.add_argument("--tolerance", type=float, default=0.01,
                     help="promote unless the candidate scores worse than the promoted one by more than this (default: %(default)s)")
+    _fault_options(sp)
     _runner_options(sp)
 
     sp = command("show", _run_show, _describe_show, "list what a workspace holds")
     sp.add_argument("workspace", help="workspace directory or URL")
     return p
+
+
+def _fault_options(sp: argparse.ArgumentParser, bad_chunks: bool = True) -> None:
+    sp.add_argument("--break-lease", action="store_true",
+                    help="take the output's write lease even if another run holds it "
+                         "(only when you know that run is dead; finished chunks are kept)")
+    if bad_chunks:
+        sp.add_argument("--on-bad-chunk", choices=("stop", "skip"), default="stop",
+                        help="a missing or unreadable input chunk stops the run, or is skipped "
+                             "and listed in the output's attributes (default: %(default)s)")
 
 
 def _ws_name(sp: argparse.ArgumentParser) -> None:
@@ -266,7 +280,7 @@ def _run_link(args):
 def _run_train(args):
     from atomline.flows import train_flow
 
-    return train_flow(args.workspace, args.name, **_train_params(args))
+    return train_flow(args.workspace, args.name, break_lease=args.break_lease, **_train_params(args))
 
 
 def _run_encode(args):
@@ -275,7 +289,8 @@ def _run_encode(args):
     with _progress(args.workspace, args.name, ("codes",), args.json):
         return _with_runner(encode_flow, args)(
             args.workspace, args.name, dict_id=args.dictionary, coder=args.coder,
-            coder_options=_coder_params(args), workers=args.workers, overwrite=args.overwrite)
+            coder_options=_coder_params(args), workers=args.workers, overwrite=args.overwrite,
+            on_bad_chunk=args.on_bad_chunk, break_lease=args.break_lease)
 
 
 def _run_pool(args):
@@ -284,7 +299,7 @@ def _run_pool(args):
     with _progress(args.workspace, args.name, ("features",), args.json):
         return _with_runner(pool_flow, args)(args.workspace, args.name, dict_id=args.dictionary,
                                              workers=args.workers, overwrite=args.overwrite,
-                                             **_pool_params(args))
+                                             break_lease=args.break_lease, **_pool_params(args))
 
 
 def _run_evaluate(args):
@@ -301,7 +316,8 @@ def _run_nightly(args):
         return _with_runner(nightly_flow, args)(
             args.workspace, args.name, labels=args.labels, metric=args.metric,
             tolerance=args.tolerance, test_fraction=args.test_fraction, max_rows=args.max_rows,
-            workers=args.workers, **_train_params(args), **_pool_params(args))
+            workers=args.workers, on_bad_chunk=args.on_bad_chunk, break_lease=args.break_lease,
+            **_train_params(args), **_pool_params(args))
 
 
 def _run_show(args):

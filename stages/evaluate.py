@@ -112,7 +112,12 @@ def evaluate_features(
                                  f"{int((~out.done_flags()).sum())} chunk(s) not pooled",
                                  "Run the encode and pool flows first."))
     y = ws.labels(labels or records)
-    rows = _labelled_rows(y, max_rows, seed)
+    n_records = out.group["values"].shape[0]
+    if y.shape[0] != n_records:
+        raise InputError(problem(f"labels {labels or records!r}", f"{n_records} labels (one per record)",
+                                 str(y.shape[0]), "Add labels for these records (overwrite=True)."))
+    lacking = _skipped_rows(out, n_records)
+    rows = _labelled_rows(y, max_rows, seed, exclude=lacking)
     train_i, test_i = train_test_split(rows, test_size=test_fraction, stratify=y[rows],
                                        random_state=seed)
     train_i, test_i = np.sort(train_i), np.sort(test_i)
@@ -134,27 +139,41 @@ def evaluate_features(
                      "test_fraction": test_fraction, "seed": seed, "max_rows": max_rows},
         "n_train": int(len(train_i)),
         "n_test": int(len(test_i)),
+        "rows_lacking": int(lacking.size),
         "tag": tag,
         "metrics": {k: {m: v[m] for m in ("accuracy", "macro_f1")} for k, v in result.items()},
     }
     run_id = ws.append_evaluation(attrs, {f"confusion_{k}": v["confusion"]
                                           for k, v in result.items()})
     manifest = {"run_id": run_id, "dict_id": dict_id, "n_train": attrs["n_train"],
-                "n_test": attrs["n_test"], "coder": attrs["coder"], "pooling": attrs["pooling"]}
+                "n_test": attrs["n_test"], "coder": attrs["coder"], "pooling": attrs["pooling"],
+                "rows_lacking": attrs["rows_lacking"]}
     manifest.update(attrs["metrics"])
     return manifest
 
 
-def _labelled_rows(y: np.ndarray, max_rows: int, seed: int) -> np.ndarray:
-    """Sorted row numbers to use: all rows, or a stratified seeded subsample."""
-    classes, counts = np.unique(y, return_counts=True)
+def _skipped_rows(out, n_records: int) -> np.ndarray:
+    """Rows whose features are missing because their input chunk was skipped."""
+    rows_per_chunk = out.group["values"].chunks[0]
+    parts = [np.arange(c * rows_per_chunk, min(n_records, (c + 1) * rows_per_chunk))
+             for c in out.skipped_chunks()]
+    return np.concatenate(parts) if parts else np.zeros(0, dtype=np.int64)
+
+
+def _labelled_rows(y: np.ndarray, max_rows: int, seed: int,
+                   exclude: np.ndarray | None = None) -> np.ndarray:
+    """Sorted row numbers to use: all rows but ``exclude``, or a stratified seeded subsample."""
+    keep = np.ones(y.shape[0], dtype=bool)
+    if exclude is not None:
+        keep[exclude] = False
+    classes, counts = np.unique(y[keep], return_counts=True)
     if classes.size < 2 or counts.min() < 2:
         raise InputError(problem("labels", "at least two classes with two rows each",
                                  f"class counts {dict(zip(classes.tolist(), counts.tolist()))}",
                                  "Label more records."))
-    rows = np.arange(y.shape[0])
-    if y.shape[0] > max_rows:
-        rows, _ = train_test_split(rows, train_size=max_rows, stratify=y, random_state=seed)
+    rows = np.flatnonzero(keep)
+    if rows.size > max_rows:
+        rows, _ = train_test_split(rows, train_size=max_rows, stratify=y[rows], random_state=seed)
     return np.sort(rows)
 
 
