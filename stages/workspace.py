@@ -180,7 +180,8 @@ class Output:
     def __init__(self, group: zarr.Group, path: str = ""):
         self.group = group
         self.path = path or group.path
-        for name, arr in group.arrays():  # before any chunk of them is decoded
+        _check_group_members(group, self.path)  # raw metadata, before Zarr parses it
+        for name, arr in group.arrays():  # and the parsed form, before any chunk is decoded
             _check_safe(arr, f"{self.path}/{name}")
         if "done" not in group or not isinstance(group["done"], zarr.Array):
             raise LayoutError(problem(self.path, "an output with a 'done' array",
@@ -431,21 +432,24 @@ class Workspace:
         check_records(arr, f"records {name!r}")
         path = f"data/{name}"
         self._refuse_existing(path, overwrite)
-        rows = chunk_rows or _default_chunk_rows(arr.shape, arr.dtype)
+        rows = _default_chunk_rows(arr.shape, arr.dtype) if chunk_rows is None else chunk_rows
         if rows < 1:
             raise InputError(problem("chunk_rows", "a positive number of rows", str(rows),
                                      "Use chunk_rows of 1 or more (or leave it out)."))
+        # A first streaming pass checks every value and computes the fingerprint, so bad
+        # records are refused before anything (an entry being replaced included) is touched.
+        digest = _Digest(arr.shape, arr.dtype)
+        for start in range(0, arr.shape[0], rows):
+            block = np.asarray(arr[start : start + rows])
+            check_finite(block, f"records {name!r}", start)
+            digest.update(block)
         # Every chunk is stored, even an all-zero one, so a missing chunk object means a
         # lost chunk, never "all fill value".
         z = self.root.create_array(path, shape=arr.shape, chunks=(rows,) + arr.shape[1:],
                                    dtype=arr.dtype, overwrite=True,
                                    config={"write_empty_chunks": True})
-        digest = _Digest(arr.shape, arr.dtype)
         for start in range(0, arr.shape[0], rows):
-            block = np.asarray(arr[start : start + rows])
-            check_finite(block, f"records {name!r}", start)
-            z[start : start + block.shape[0]] = block
-            digest.update(block)
+            z[start : start + rows] = np.asarray(arr[start : start + rows])
         z.attrs.update({"all_chunks_stored": True, "fingerprint": digest.hexdigest()})
         return self.describe_records(name)
 
@@ -875,6 +879,7 @@ class Workspace:
         """The arrays of one evaluation (confusion matrices, …)."""
         self.evaluation(run_id)
         g = self._node(f"evaluations/{run_id}", "evaluation")
+        _check_group_members(g, f"evaluations/{run_id}")
         return {k: np.asarray(self._node(f"evaluations/{run_id}/{k}", "array")[:])
                 for k in g.array_keys()}
 
@@ -977,6 +982,7 @@ class Workspace:
 
     # ------------------------------------------------------------------ helpers
     def _node(self, path: str, what: str) -> Any:
+        _check_stored_node(self.root.store, f"{self.root.store_path.path}/{path}", path)
         try:
             present = path in self.root
             node = self.root[path] if present else None
@@ -1034,6 +1040,62 @@ def check_finite(block: np.ndarray, where: str, first_row: int) -> None:
 def _check_safe(arr: zarr.Array, where: str) -> None:
     """Refuse an array whose decoding could run code (see :mod:`._safety`)."""
     check_array_metadata(arr.metadata.to_dict(), where)
+
+
+def _check_document(data: bytes | None, name: str, where: str) -> None:
+    """Check one raw metadata document (``zarr.json`` or ``.zarray``) before Zarr parses it."""
+    if data is None:
+        return
+    try:
+        doc = json.loads(data)
+    except ValueError as exc:
+        raise LayoutError(problem(where, f"a JSON {name}", f"unreadable bytes ({exc})",
+                                  "The store was altered; rebuild this entry.")) from exc
+    if not isinstance(doc, dict):
+        raise LayoutError(problem(where, f"a JSON object in {name}", type(doc).__name__,
+                                  "The store was altered; rebuild this entry."))
+    if name == ".zarray" or doc.get("node_type") == "array":
+        check_array_metadata(doc, where)
+
+
+def _check_stored_node(store: Any, path: str, where: str) -> None:
+    """Check the raw metadata of the node at ``path`` of a zarr store (if it is an array)."""
+    from zarr.core.buffer import default_buffer_prototype
+    from zarr.core.sync import sync
+
+    for name in ("zarr.json", ".zarray"):
+        buf = sync(store.get(f"{path}/{name}".lstrip("/"), prototype=default_buffer_prototype()))
+        _check_document(None if buf is None else buf.to_bytes(), name, where)
+
+
+def _check_group_members(group: zarr.Group, where: str) -> None:
+    """Check the raw metadata of every child of ``group`` before Zarr opens them."""
+    from zarr.core.sync import sync
+
+    async def children() -> list[str]:
+        return [c async for c in group.store.list_dir(group.path)]
+
+    for child in sync(children()):
+        if child not in ("zarr.json", ".zattrs", ".zgroup", ".zarray"):
+            _check_stored_node(group.store, f"{group.path}/{child}", f"{where}/{child}")
+
+
+def _check_linked_metadata(url: str, path: str, storage_options: dict | None) -> None:
+    """Check the raw metadata of a linked array with fsspec, before Zarr parses it."""
+    import fsspec
+
+    try:
+        fs, base = fsspec.core.url_to_fs(url, **(storage_options or {}) if "://" in url else {})
+    except Exception:  # an unknown protocol: zarr.open reports it next
+        return
+    where = f"linked array {url}:{path}"
+    for name in ("zarr.json", ".zarray"):
+        key = "/".join(p for p in (base.rstrip("/"), path.strip("/"), name) if p)
+        try:
+            data = fs.cat_file(key)
+        except (FileNotFoundError, IsADirectoryError, NotADirectoryError):
+            continue
+        _check_document(data, name, where)
 
 
 def _check_atoms(atoms: np.ndarray, where: str, error: type = InputError) -> None:
@@ -1095,6 +1157,7 @@ def _default_chunk_rows(shape: tuple[int, ...], dtype: np.dtype) -> int:
 
 def _open_array(url: str, path: str, storage_options: dict | None) -> zarr.Array:
     kwargs = {"storage_options": storage_options} if storage_options and "://" in str(url) else {}
+    _check_linked_metadata(str(url), str(path), storage_options)
     try:
         node = zarr.open(store=url, path=path or None, mode="r", **kwargs)
     except Exception as exc:  # zarr raises several kinds for a missing or foreign node
