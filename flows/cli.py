@@ -120,6 +120,7 @@ def _parser() -> argparse.ArgumentParser:
     sp = command("train", _run_train, None, "learn a dictionary from a sample of data/NAME")
     _ws_name(sp)
     _train_options(sp)
+    _fault_options(sp, bad_chunks=False)
     _runner_options(sp)
 
     sp = command("encode", _run_encode, _describe_stage, "sparse-code every chunk of data/NAME (resumes)")
@@ -127,6 +128,7 @@ def _parser() -> argparse.ArgumentParser:
     sp.add_argument("--dictionary", help="dictionary id (default: the promoted one)")
     _coder_options(sp, default=None)
     sp.add_argument("--overwrite", action="store_true", help="replace codes made from other inputs")
+    _fault_options(sp)
     _runner_options(sp)
 
     sp = command("pool", _run_pool, _describe_stage, "pool the codes of data/NAME into per-record features (resumes)")
@@ -134,6 +136,7 @@ def _parser() -> argparse.ArgumentParser:
     sp.add_argument("--dictionary", help="dictionary id (default: the promoted one)")
     _pool_options(sp)
     sp.add_argument("--overwrite", action="store_true", help="replace features made with other options")
+    _fault_options(sp, bad_chunks=False)
     _runner_options(sp)
 
     sp = command("evaluate", _run_evaluate, _describe_evaluation,
@@ -173,6 +176,16 @@ def _parser() -> argparse.ArgumentParser:
     sp = command("show", _run_show, _describe_show, "list what a workspace holds")
     sp.add_argument("workspace", help="workspace directory or URL")
     return p
+
+
+def _fault_options(sp: argparse.ArgumentParser, bad_chunks: bool = True) -> None:
+    sp.add_argument("--break-lease", action="store_true",
+                    help="take the output's write lease even if another run holds it "
+                         "(only when you know that run is dead; finished chunks are kept)")
+    if bad_chunks:
+        sp.add_argument("--on-bad-chunk", choices=("stop", "skip"), default="stop",
+                        help="a missing or unreadable input chunk stops the run, or is skipped "
+                             "and listed in the output's attributes (default: %(default)s)")
 
 
 def _ws_name(sp: argparse.ArgumentParser) -> None:
@@ -292,12 +305,14 @@ def _nightly_options(sp: argparse.ArgumentParser) -> None:
                          "dictionary and encode only records it has not covered yet (default: %(default)s)")
     sp.add_argument("--drift-threshold", type=float, default=0.2,
                     help="relative change of reconstruction error or nonzeros that counts as drift (default: %(default)s)")
+    _fault_options(sp)
 
 
 def _nightly_params(args: argparse.Namespace) -> dict:
     return dict(metric=args.metric, tolerance=args.tolerance, fail_on_regression=args.fail_on_regression,
                 retrain_on_drift=args.retrain_on_drift, drift_since=args.drift_since,
                 drift_threshold=args.drift_threshold, workers=args.workers, retrain=args.retrain,
+                on_bad_chunk=args.on_bad_chunk, break_lease=args.break_lease,
                 **_evaluation_params(args), **_train_params(args), **_pool_params(args))
 
 
@@ -348,7 +363,7 @@ def _run_train(args):
     from atomline.flows import train_flow
 
     with _progress(args.workspace, args.name, (), args.json, status="learning a dictionary"):
-        return _with_runner(train_flow, args)(args.workspace, args.name, **_train_params(args))
+        return _with_runner(train_flow, args)(args.workspace, args.name, break_lease=args.break_lease, **_train_params(args))
 
 
 def _run_encode(args):
@@ -357,8 +372,9 @@ def _run_encode(args):
     with _progress(args.workspace, args.name, ("codes",), args.json):
         return _with_runner(encode_flow, args)(
             args.workspace, args.name, dict_id=args.dictionary, coder=args.coder,
-            coder_options=_coder_params(args), workers=args.workers,
-            batches_per_worker=args.batches_per_worker, overwrite=args.overwrite)
+            coder_options=_coder_params(args), workers=args.workers, overwrite=args.overwrite,
+            batches_per_worker=args.batches_per_worker,
+            on_bad_chunk=args.on_bad_chunk, break_lease=args.break_lease)
 
 
 def _run_pool(args):
@@ -367,6 +383,7 @@ def _run_pool(args):
     with _progress(args.workspace, args.name, ("features",), args.json):
         return _with_runner(pool_flow, args)(args.workspace, args.name, dict_id=args.dictionary,
                                              workers=args.workers, overwrite=args.overwrite,
+                                             break_lease=args.break_lease,
                                              batches_per_worker=args.batches_per_worker,
                                              **_pool_params(args))
 

@@ -26,12 +26,12 @@ from prefect.states import Completed, Failed, State
 
 from atomline.stages.drift import detect_drift
 from atomline.stages.errors import InputError, NotFound, problem
-from atomline.stages.encode import encode_task, prepare_encode
+from atomline.stages.encode import codes_path, encode_task, prepare_encode
 from atomline.stages.evaluate import (BASELINES, DEFAULT_CURVE, compare_evaluations, evaluate_task,
                                       gate_decision)
 from atomline.stages.pictures import render_report
 from atomline.stages.scoring import SCORES
-from atomline.stages.pool import pool_task, prepare_pool
+from atomline.stages.pool import features_path, pool_task, prepare_pool
 from atomline.stages.train import train_task
 from atomline.stages.workspace import Workspace
 
@@ -92,12 +92,14 @@ def _summarise(results: list[dict], prepared: dict, key: str, wall: float) -> di
 def train_flow(workspace: str, records: str, n_atoms: int = 128, patch_size: int | list[int] | None = None,
                stride: int | list[int] | None = None, method: str = "online", coder: str = "omp",
                coder_options: dict | None = None, learner_options: dict | None = None,
-               preprocessing: dict | None = None, sample_patches: int = 20_000, seed: int = 0) -> dict:
+               preprocessing: dict | None = None, sample_patches: int = 20_000, seed: int = 0,
+               break_lease: bool = False) -> dict:
     """Learn a dictionary from a sample of ``data/<records>`` (see ``train_dictionary``)."""
     manifest = train_task(workspace, records, n_atoms=n_atoms, patch_size=_tuple(patch_size),
                           stride=_tuple(stride), method=method, coder=coder,
                           coder_options=coder_options, learner_options=learner_options,
-                          preprocessing=preprocessing, sample_patches=sample_patches, seed=seed)
+                          preprocessing=preprocessing, sample_patches=sample_patches, seed=seed,
+                          run=_run_name(), break_lease=break_lease)
     get_run_logger().info("dictionary %s (%s, reused=%s)", manifest["dict_id"], method, manifest["reused"])
     return manifest
 
@@ -105,29 +107,38 @@ def train_flow(workspace: str, records: str, n_atoms: int = 128, patch_size: int
 @flow(name="atomline-encode", task_runner=task_runner("threads", 2))
 def encode_flow(workspace: str, records: str, dict_id: str | None = None, coder: str | None = None,
                 coder_options: dict | None = None, workers: int = 2, batches_per_worker: int = 4,
-                overwrite: bool = False) -> dict:
+                overwrite: bool = False, on_bad_chunk: str = "stop", break_lease: bool = False) -> dict:
     """Encode every pending chunk of ``data/<records>`` in parallel batches.
 
     ``dict_id`` defaults to the promoted dictionary. Finished chunks are skipped, so
-    rerunning after a crash resumes.
+    rerunning after a crash resumes. The run holds the write lease of the codes output
+    throughout (a second run on the same output is refused); ``on_bad_chunk`` is
+    ``"stop"`` or ``"skip"`` (see ``encode_chunks``).
     """
     logger = get_run_logger()
     check_reachable(workspace)
     dict_id = dict_id or _promoted(workspace)
-    prepared = prepare_encode(workspace, records, dict_id, coder=coder,
-                              coder_options=coder_options, overwrite=overwrite)
-    batches = plan_batches(prepared["pending"], workers, batches_per_worker)
-    logger.info("encode %s with %s: %d of %d chunks pending, %d batches",
-                records, dict_id, len(prepared["pending"]), prepared["n_chunks"], len(batches))
-    start = time.perf_counter()
-    progress = ChunkProgress(records, len(prepared["pending"]), "encode")
-    futures = [encode_task.submit(workspace, records, dict_id, b, blas_threads=blas_threads(workers))
-               for b in batches]
-    results = []
-    for future in as_completed(futures):
-        results.append(future.result())
-        progress.advance(results[-1]["encoded"] + results[-1]["skipped"])
+    ws = Workspace.open(workspace)
+    with ws.lease(codes_path(dict_id, records), run=_run_name(), break_existing=break_lease):
+        prepared = prepare_encode(ws, records, dict_id, coder=coder,
+                                  coder_options=coder_options, overwrite=overwrite)
+        batches = plan_batches(prepared["pending"], workers, batches_per_worker)
+        logger.info("encode %s with %s: %d of %d chunks pending, %d batches",
+                    records, dict_id, len(prepared["pending"]), prepared["n_chunks"], len(batches))
+        start = time.perf_counter()
+        progress = ChunkProgress(records, len(prepared["pending"]), "encode")
+        futures = [encode_task.submit(workspace, records, dict_id, b, blas_threads=blas_threads(workers),
+                                      on_bad_chunk=on_bad_chunk)
+                   for b in batches]
+        results = []
+        for future in as_completed(futures):
+            results.append(future.result())
+            progress.advance(results[-1]["encoded"] + results[-1]["skipped"])
+        skipped = _record_skips(ws, codes_path(dict_id, records), records)
     summary = _summarise(results, prepared, "encoded", time.perf_counter() - start)
+    summary["skipped_rows"] = skipped["n_rows"]
+    if skipped["n_rows"]:
+        logger.warning("skipped %d rows of bad input chunks %s", skipped["n_rows"], skipped["chunks"])
     summary.update(dict_id=dict_id, coder=prepared["coder"], coder_options=prepared["coder_options"])
     logger.info("encoded %d chunks, skipped %d already done", summary["encoded"], summary["skipped"])
     return summary
@@ -136,17 +147,21 @@ def encode_flow(workspace: str, records: str, dict_id: str | None = None, coder:
 @flow(name="atomline-pool", task_runner=task_runner("threads", 2))
 def pool_flow(workspace: str, records: str, dict_id: str | None = None, reduce: str = "max",
               split_sign: bool = True, regions: int | list[int] = 4, workers: int = 2,
-              batches_per_worker: int = 4, overwrite: bool = False) -> dict:
-    """Pool the codes of every pending chunk into per-record features."""
+              batches_per_worker: int = 4, overwrite: bool = False, break_lease: bool = False) -> dict:
+    """Pool the codes of every pending chunk into per-record features (under a write lease)."""
     check_reachable(workspace)
     dict_id = dict_id or _promoted(workspace)
-    prepared = prepare_pool(workspace, records, dict_id, reduce=reduce, split_sign=split_sign,
-                            regions=_tuple(regions), overwrite=overwrite)
-    start = time.perf_counter()
-    futures = [pool_task.submit(workspace, records, dict_id, b)
-               for b in plan_batches(prepared["pending"], workers, batches_per_worker)]
-    results = [f.result() for f in futures]
+    ws = Workspace.open(workspace)
+    with ws.lease(features_path(dict_id, records), run=_run_name(), break_existing=break_lease):
+        prepared = prepare_pool(ws, records, dict_id, reduce=reduce, split_sign=split_sign,
+                                regions=_tuple(regions), overwrite=overwrite)
+        start = time.perf_counter()
+        futures = [pool_task.submit(workspace, records, dict_id, b)
+                   for b in plan_batches(prepared["pending"], workers, batches_per_worker)]
+        results = [f.result() for f in futures]
+        skipped = _record_skips(ws, features_path(dict_id, records), records)
     summary = _summarise(results, prepared, "pooled", time.perf_counter() - start)
+    summary["skipped_rows"] = skipped["n_rows"]
     summary.update(dict_id=dict_id, n_features=prepared["n_features"])
     get_run_logger().info("pooled %d chunks, skipped %d", summary["pooled"], summary["skipped"])
     return summary
@@ -205,7 +220,8 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
                  pictures: bool = True, class_names: list[str] | None = None,
                  retrain_on_drift: bool = False, drift_since: int | None = None,
                  drift_threshold: float = 0.2, fail_on_regression: bool = False,
-                 workers: int = 2, batches_per_worker: int = 4, retrain: str = "always") -> State:
+                 workers: int = 2, batches_per_worker: int = 4, on_bad_chunk: str = "stop",
+                 break_lease: bool = False, retrain: str = "always") -> State:
     """Train a candidate dictionary, encode, pool, evaluate, and promote it if it holds up.
 
     **Gate.** The candidate and the promoted dictionary are evaluated on the same rows
@@ -263,9 +279,11 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
 
     def features_for(dict_id: str) -> tuple[dict, dict]:
         enc = encode_flow.fn(workspace, records, dict_id=dict_id, workers=workers,
-                             batches_per_worker=batches_per_worker)
+                             batches_per_worker=batches_per_worker, on_bad_chunk=on_bad_chunk,
+                             break_lease=break_lease)
         pooled = pool_flow.fn(workspace, records, dict_id=dict_id, reduce=reduce, split_sign=split_sign,
-                              regions=regions, workers=workers, batches_per_worker=batches_per_worker)
+                              regions=regions, workers=workers, batches_per_worker=batches_per_worker,
+                              break_lease=break_lease)
         return enc, pooled
 
     report = {"previous_id": previous, "metric": metric, "tolerance": tolerance, "drift": None,
@@ -288,7 +306,7 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
     trained = train_flow.fn(workspace, records, n_atoms=n_atoms, patch_size=patch_size, stride=stride,
                             method=method, coder=coder, coder_options=coder_options,
                             learner_options=learner_options, preprocessing=preprocessing,
-                            sample_patches=sample_patches, seed=seed)
+                            sample_patches=sample_patches, seed=seed, break_lease=break_lease)
     candidate_id = trained["dict_id"]
     encoded, pooled = features_for(candidate_id)
     cand_eval = evaluate_task(workspace, records, candidate_id, tag="candidate", **evaluation)
@@ -318,7 +336,9 @@ def _finish(workspace: str, records: str, report: dict, fail_on_regression: bool
     outcome = report["outcome"]
     ws = Workspace.open(workspace)
     if outcome in ("first", "promoted"):
-        ws.promote(report["candidate_id"])
+        # promote() re-checks that the dictionary, its features and this evaluation of
+        # them are complete and consistent before it moves the pointer.
+        ws.promote(report["candidate_id"], evaluation=report["candidate"]["run_id"])
     report["promoted_id"] = ws.promoted
     cand = report["candidate"]
     ws.append_decision({
@@ -361,6 +381,19 @@ def _finish(workspace: str, records: str, report: dict, fail_on_regression: bool
         logger.info("nightly outcome: %s", message)
     state = Failed if outcome == "regression" and fail_on_regression else Completed
     return state(data=report, name=STATE_NAMES[outcome], message=message)
+
+
+def _run_name() -> str:
+    """Name of the current flow run, for write leases (who holds an output)."""
+    from prefect.runtime import flow_run
+
+    return f"{flow_run.flow_name or 'atomline'}/{flow_run.name or flow_run.id or 'local'}"
+
+
+def _record_skips(ws: Workspace, path: str, records: str) -> dict:
+    """List the rows of skipped chunks in the output's attributes (one writer: the flow)."""
+    info = ws.describe_records(records)
+    return ws.output(path).record_skips(info["chunk_rows"], info["shape"][0])
 
 
 def _promoted(workspace: str) -> str:

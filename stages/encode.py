@@ -23,9 +23,9 @@ from prefect.cache_policies import NO_CACHE
 from threadpoolctl import threadpool_limits
 
 from .coding import code, code_width, gram
-from .errors import FingerprintMismatch, InputError, problem
+from .errors import BadChunk, FingerprintMismatch, InputError, problem
 from .prep import Normaliser, PatchGeometry
-from .workspace import Workspace, fingerprint_params, iter_row_chunks
+from .workspace import BAD_CHUNK_CHOICES, Workspace, fingerprint_params, iter_row_chunks
 
 __all__ = ["prepare_encode", "encode_chunks", "encode_task", "codes_path"]
 
@@ -83,6 +83,7 @@ def prepare_encode(
     attrs = {
         "records": records,
         "dict_id": dict_id,
+        "records_fingerprint": ws.records_fingerprint(records),  # of the rows covered now
         "dictionary_fingerprint": stored.fingerprint,
         "params": params,
         "patches_per_record": P,
@@ -107,9 +108,10 @@ def prepare_encode(
         covers={"records": records, "rows": int(arr.shape[0]),
                 "fingerprint": ws.records_fingerprint(records)},
     )
+    skipped = out.record_skips(int(arr.chunks[0]), int(arr.shape[0]))
     return {"output": codes_path(dict_id, records), "n_chunks": out.n_chunks,
             "pending": out.pending(), "coder": coder, "coder_options": coder_options,
-            "width": width}
+            "width": width, "skipped_rows": skipped["n_rows"]}
 
 
 def encode_chunks(
@@ -120,6 +122,7 @@ def encode_chunks(
     *,
     blas_threads: int | None = None,
     storage_options: dict | None = None,
+    on_bad_chunk: str = "stop",
 ) -> dict:
     """Encode a batch of row chunks into the prepared codes output.
 
@@ -136,13 +139,22 @@ def encode_chunks(
         Limit BLAS threads while coding (so workers × threads stay within the cores).
     storage_options : dict, optional
         For opening ``workspace`` when it is a URL.
+    on_bad_chunk : {"stop", "skip"}
+        What to do with a missing or unreadable input chunk: raise
+        :class:`~atomline.stages.errors.BadChunk` naming it, or mark its output chunk
+        skipped (flag 2, fill values) and go on; the skipped rows are listed in the
+        output's ``skipped`` attribute by the next :func:`prepare_encode` or flow.
 
     Returns
     -------
     dict
-        ``{"encoded": chunks done now, "skipped": chunks already done,
-        "records": records coded, "patches": patches coded, "seconds": wall time}``
+        ``{"encoded": chunks done now, "skipped": chunks already done, "bad": chunks
+        skipped now for bad input, "records": records coded, "patches": patches coded,
+        "seconds": wall time}``
     """
+    if on_bad_chunk not in BAD_CHUNK_CHOICES:
+        raise InputError(problem("on_bad_chunk", f"one of {BAD_CHUNK_CHOICES}", repr(on_bad_chunk),
+                                 "Pick 'stop' or 'skip'."))
     start = time.perf_counter()
     ws = (workspace if isinstance(workspace, Workspace)
           else Workspace.open(workspace, storage_options=storage_options))
@@ -162,13 +174,20 @@ def encode_chunks(
         options.setdefault("gram", gram(atoms))  # the same for every chunk: compute once
     P = attrs["patches_per_record"]
     width = attrs["width"]
-    encoded = skipped = n_records = 0
+    encoded = skipped = bad = n_records = 0
     with threadpool_limits(limits=blas_threads):
         for c, rows in iter_row_chunks(arr, chunks):
             if out.is_done(c):
                 skipped += 1
                 continue
-            block = np.asarray(arr[rows])
+            try:
+                block = ws.read_chunk(records, c, arr)
+            except BadChunk as exc:
+                if on_bad_chunk == "stop":
+                    raise
+                out.skip(c, slice(rows.start * P, rows.stop * P), str(exc))
+                bad += 1
+                continue
             patches = normaliser.apply(geometry.extract(block))
             codes = code(patches, atoms, coder, **options)
             out.commit(c, slice(rows.start * P, rows.stop * P), {
@@ -178,7 +197,7 @@ def encode_chunks(
             })
             encoded += 1
             n_records += block.shape[0]
-    return {"encoded": encoded, "skipped": skipped, "records": n_records,
+    return {"encoded": encoded, "skipped": skipped, "bad": bad, "records": n_records,
             "patches": n_records * P, "seconds": time.perf_counter() - start}
 
 

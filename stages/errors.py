@@ -18,6 +18,10 @@ __all__ = [
     "FingerprintMismatch",
     "OutputExists",
     "NotFound",
+    "BadChunk",
+    "LeaseHeld",
+    "UnsafeStore",
+    "StoreFault",
     "problem",
 ]
 
@@ -69,3 +73,19 @@ class NotFound(AtomlineError, KeyError):
 
     def __str__(self) -> str:  # KeyError quotes its message; keep it readable
         return str(self.args[0]) if self.args else ""
+
+
+class BadChunk(InputError):
+    """An input chunk that is missing, cannot be decoded, or holds NaN/Inf."""
+
+
+class LeaseHeld(AtomlineError, RuntimeError):
+    """Another run holds the write lease of an output."""
+
+
+class UnsafeStore(LayoutError):
+    """A store whose arrays could run code when read (object dtypes, pickling codecs)."""
+
+
+class StoreFault(AtomlineError, OSError):
+    """The store failed while a chunk was being written (full disk, refused write)."""

@@ -61,7 +61,7 @@ from .encode import codes_path
 from .errors import InputError, problem
 from .pool import features_path, pool_codes, region_of_patches
 from .prep import Normaliser, PatchGeometry
-from .scoring import SCORES, confusion, paired_bootstrap, scores_from_confusion
+from .scoring import confusion, paired_bootstrap, scores_from_confusion
 from .workspace import Workspace, fingerprint_params, iter_row_chunks
 
 __all__ = ["evaluate_features", "evaluate_task", "cross_predict", "make_classifier",
@@ -242,10 +242,12 @@ def evaluate_features(
                                  "Run the encode and pool flows first."))
     labels_name = labels or records
     y_all = ws.labels(labels_name)
-    if out.n_rows != y_all.shape[0]:  # records grew (append_records) since these features
-        raise InputError(problem(features_path(dict_id, records), f"features for all {y_all.shape[0]} records",
-                                 f"features for {out.n_rows}", "Run the encode and pool flows again."))
-    rows = _labelled_rows(y_all, max_rows, seed, folds)
+    n_records = out.group["values"].shape[0]
+    if y_all.shape[0] != n_records:
+        raise InputError(problem(f"labels {labels_name!r}", f"{n_records} labels (one per record)",
+                                 str(y_all.shape[0]), "Add labels for these records (overwrite=True)."))
+    lacking = _skipped_rows(out, n_records)
+    rows = _labelled_rows(y_all, max_rows, seed, folds, exclude=lacking)
     classes, y = np.unique(y_all[rows], return_inverse=True)
     n_classes = classes.size
     splitter = StratifiedKFold(n_splits=folds, shuffle=True, random_state=seed)
@@ -294,6 +296,7 @@ def evaluate_features(
                      "max_rows": max_rows, "n_boot": n_boot},
         "classes": classes.tolist(),
         "n_rows": int(rows.size),
+        "rows_lacking": int(lacking.size),
         "tag": tag,
         "metrics": metrics,
         "per_class": per_class,
@@ -301,7 +304,8 @@ def evaluate_features(
         "learning_curve": curve,
     }
     run_id = ws.append_evaluation(attrs, arrays)
-    manifest = {"run_id": run_id, "dict_id": dict_id, "n_rows": attrs["n_rows"], "folds": folds,
+    manifest = {"run_id": run_id, "dict_id": dict_id, "n_rows": attrs["n_rows"],
+                "rows_lacking": attrs["rows_lacking"], "folds": folds,
                 "coder": attrs["coder"], "pooling": attrs["pooling"], "tag": tag,
                 "versus": versus, "learning_curve": curve}
     manifest.update(metrics)
@@ -386,18 +390,30 @@ def gate_decision(comparison: dict[str, float], tolerance: float) -> str:
 
 
 # ---------------------------------------------------------------------------- helpers
-def _labelled_rows(y: np.ndarray, max_rows: int, seed: int, folds: int) -> np.ndarray:
-    """Sorted row numbers to use: all rows, or a stratified seeded subsample."""
+def _skipped_rows(out, n_records: int) -> np.ndarray:
+    """Rows whose features are missing because their input chunk was skipped."""
+    rows_per_chunk = out.group["values"].chunks[0]
+    parts = [np.arange(c * rows_per_chunk, min(n_records, (c + 1) * rows_per_chunk))
+             for c in out.skipped_chunks()]
+    return np.concatenate(parts) if parts else np.zeros(0, dtype=np.int64)
+
+
+def _labelled_rows(y: np.ndarray, max_rows: int, seed: int, folds: int,
+                   exclude: np.ndarray | None = None) -> np.ndarray:
+    """Sorted row numbers to use: all rows but ``exclude``, or a stratified seeded subsample."""
     if folds < 2:
         raise InputError(problem("folds", "at least 2", str(folds), "Use e.g. 5 folds."))
-    classes, counts = np.unique(y, return_counts=True)
+    keep = np.ones(y.shape[0], dtype=bool)
+    if exclude is not None:
+        keep[exclude] = False
+    classes, counts = np.unique(y[keep], return_counts=True)
     if classes.size < 2 or counts.min() < folds:
         raise InputError(problem("labels", f"at least two classes with {folds} rows each",
                                  f"class counts {dict(zip(classes.tolist(), counts.tolist()))}",
                                  "Label more records or use fewer folds."))
-    rows = np.arange(y.shape[0])
-    if y.shape[0] > max_rows:
-        rows, _ = train_test_split(rows, train_size=max_rows, stratify=y, random_state=seed)
+    rows = np.flatnonzero(keep)
+    if rows.size > max_rows:
+        rows, _ = train_test_split(rows, train_size=max_rows, stratify=y[rows], random_state=seed)
     return np.sort(rows)
 
 

@@ -176,8 +176,9 @@ def prepare_pool(
                            chunk_rows=cattrs["record_chunk_rows"],
                            arrays={"values": ((F,), "float32")}, attrs=attrs,
                            overwrite=overwrite, covers=cattrs["covers"])
+    skipped = out.record_skips(cattrs["record_chunk_rows"], n_records)
     return {"output": features_path(dict_id, records), "n_chunks": out.n_chunks,
-            "pending": out.pending(), "n_features": F}
+            "pending": out.pending(), "n_features": F, "skipped_rows": skipped["n_rows"]}
 
 
 def pool_chunks(
@@ -228,6 +229,10 @@ def pool_chunks(
                                      "encoded codes", "a chunk not encoded yet",
                                      "Run the encode flow first."))
         rows = slice(c * rows_per_chunk, min(n_records, (c + 1) * rows_per_chunk))
+        if codes.is_skipped(c):  # its input chunk was bad: no features either
+            out.skip(c, rows, "codes chunk skipped")
+            pooled += 1
+            continue
         crow = slice(rows.start * P, rows.stop * P)
         feats = pool_codes(codes.group["index"][crow], codes.group["value"][crow],
                            n_atoms=cattrs["n_atoms"], patch_region=region, n_regions=R,

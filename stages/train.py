@@ -40,6 +40,8 @@ def train_dictionary(
     sample_patches: int = 20_000,
     seed: int = 0,
     dict_id: str | None = None,
+    run: str | None = None,
+    break_lease: bool = False,
 ) -> dict:
     """Train a dictionary on a sample of ``data/<records>`` and store it.
 
@@ -70,6 +72,10 @@ def train_dictionary(
         Seeds the sample and the learner.
     dict_id : str, optional
         Id to store under; derived from the inputs by default.
+    run : str, optional
+        Name of this run, shown to another run refused by the dictionary's write lease.
+    break_lease : bool
+        Take the dictionary's write lease even if another run holds it.
 
     Returns
     -------
@@ -103,20 +109,25 @@ def train_dictionary(
         stored = ws.load_dictionary(dict_id)
         return _manifest(stored.attrs, dict_id, reused=True)
 
-    sample = _sample_patches(arr, geometry, sample_patches, seed)
-    learned = learn(
-        sample, n_atoms, method, preprocessing=normaliser, coder=coder,
-        coder_options=coder_options, seed=seed, **learner_options,
-    )
-    attrs = dict(
-        recipe,
-        records=records,
-        n_features=geometry.n_features,
-        preprocessing=learned.preprocessing.to_attrs(),
-        params=learned.params,
-        diagnostics=learned.diagnostics,
-    )
-    stored = ws.save_dictionary(dict_id, learned.atoms, attrs, learned.preprocessing.arrays())
+    # One run trains a given dictionary at a time; a second one is refused, naming the first.
+    with ws.lease(f"dictionaries/{dict_id}", run=run, break_existing=break_lease):
+        if ws.has_dictionary(dict_id):  # finished by another run just before we took the lease
+            return _manifest(ws.load_dictionary(dict_id).attrs, dict_id, reused=True)
+        sample = _sample_patches(arr, geometry, sample_patches, seed,
+                                 read=lambda c: ws.read_chunk(records, c, arr))
+        learned = learn(
+            sample, n_atoms, method, preprocessing=normaliser, coder=coder,
+            coder_options=coder_options, seed=seed, **learner_options,
+        )
+        attrs = dict(
+            recipe,
+            records=records,
+            n_features=geometry.n_features,
+            preprocessing=learned.preprocessing.to_attrs(),
+            params=learned.params,
+            diagnostics=learned.diagnostics,
+        )
+        stored = ws.save_dictionary(dict_id, learned.atoms, attrs, learned.preprocessing.arrays())
     return _manifest(stored.attrs, dict_id, reused=False)
 
 
@@ -135,11 +146,13 @@ def _manifest(attrs: dict, dict_id: str, reused: bool) -> dict:
     }
 
 
-def _sample_patches(arr: Any, geometry: PatchGeometry, n_patches: int, seed: int) -> np.ndarray:
+def _sample_patches(arr: Any, geometry: PatchGeometry, n_patches: int, seed: int,
+                    read=None) -> np.ndarray:
     """Draw ``n_patches`` patches uniformly over the archive, reading only needed chunks.
 
     Records are chosen first (seeded, without replacement, independent of the chunking),
     then patches among theirs; the result depends on the seed and the data only.
+    ``read(chunk)`` reads and checks one row chunk (default: plain slicing).
 
     Returns
     -------
@@ -151,10 +164,11 @@ def _sample_patches(arr: Any, geometry: PatchGeometry, n_patches: int, seed: int
     n_records = min(n, -(-n_patches // P) * 2)  # twice the minimum, for patch diversity
     chosen = np.sort(rng.choice(n, size=n_records, replace=False))
     parts = []
-    for _, rows in iter_row_chunks(arr):
+    for c, rows in iter_row_chunks(arr):
         inside = chosen[(chosen >= rows.start) & (chosen < rows.stop)]
         if inside.size:
-            block = np.asarray(arr[rows.start : rows.stop])[inside - rows.start]
+            whole = np.asarray(arr[rows.start : rows.stop]) if read is None else read(c)
+            block = whole[inside - rows.start]
             parts.append(geometry.extract(block))
     patches = np.concatenate(parts)
     keep = np.sort(rng.choice(patches.shape[0], size=min(n_patches, patches.shape[0]), replace=False))

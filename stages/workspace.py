@@ -12,6 +12,10 @@ This is the only module that knows the layout::
     evaluations/<run-id>/     one group per evaluation (append-only)
     decisions/<id>/           one group per promotion-gate decision (append-only, attrs)
     reports/<run-id>/<name>   pictures: uint8 arrays holding PNG files' bytes
+    .leases/<output>.json     write leases of running stages (not Zarr nodes)
+
+A done flag is 0 (to do), 1 (done) or 2 (done without data: its input chunk was bad
+and the run was told to skip it; the output's ``skipped`` attribute lists the rows).
 
 The root group's attributes carry the layout version and the pointer to the promoted
 dictionary. A whole run is one URL: a local directory, or any fsspec URL such as
@@ -43,9 +47,13 @@ from typing import Any, Iterator
 import numpy as np
 import zarr
 
-from .errors import FingerprintMismatch, InputError, LayoutError, NotFound, OutputExists, problem
+from . import _leases
+from ._safety import check_array_metadata, require_attrs
+from .errors import (AtomlineError, BadChunk, FingerprintMismatch, InputError, LayoutError,
+                     NotFound, OutputExists, StoreFault, problem)
 
 __all__ = ["Workspace", "Output", "StoredDictionary", "LAYOUT_VERSION", "fingerprint_params",
+           "BAD_CHUNK_CHOICES",
            "resolve_storage_options", "STORAGE_OPTIONS_ENV"]
 
 #: Version of the layout above. A store with a larger number was written by a newer
@@ -60,6 +68,25 @@ _DIGEST_BLOCK_BYTES = 4 * 2**20
 #: Environment variable holding storage options (JSON, or ``@path`` of a JSON file) for
 #: workspaces on fsspec URLs; see :func:`resolve_storage_options`.
 STORAGE_OPTIONS_ENV = "ATOMLINE_STORAGE_OPTIONS"
+#: What a stage does with an input chunk that is missing or unreadable.
+BAD_CHUNK_CHOICES = ("stop", "skip")
+_DONE, _SKIPPED = 1, 2  # done-flag values
+#: Tokens of the leases this process holds (a holder may write its own outputs).
+_HELD_LEASES: set[str] = set()
+#: Attributes each kind of entry must carry, with their JSON types.
+_RECORDS_ATTRS = {"fingerprint": str}
+_LINK_ATTRS = {"fingerprint": str, "link": dict, "shape": list, "dtype": str}
+_DICTIONARY_ATTRS = {"fingerprint": str, "prep_arrays": list}
+_DICTIONARY_OPTIONAL = {"preprocessing": dict, "geometry": dict, "coder": str, "coder_options": dict,
+                        "n_atoms": int, "n_features": int, "method": str}
+_OUTPUT_ATTRS = {
+    "codes": {"fingerprint": str, "records": str, "dict_id": str, "records_fingerprint": str,
+              "dictionary_fingerprint": str, "params": dict, "patches_per_record": int,
+              "record_chunk_rows": int, "geometry": dict, "n_atoms": int, "width": int},
+    "features": {"fingerprint": str, "records": str, "dict_id": str, "codes_fingerprint": str,
+                 "coder": str, "params": dict, "n_features": int, "n_regions": int},
+}
+_EVALUATION_ATTRS = {"run_id": str, "dict_id": str, "records": str, "metrics": dict}
 
 
 def _package_version() -> str:
@@ -89,6 +116,17 @@ def fingerprint_params(params: dict) -> str:
 
 def _now() -> str:
     return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+
+
+def _check_output_path(path: str) -> str:
+    """Output paths are ``codes|features/<dict-id>/<records>``: nothing may escape them."""
+    parts = path.split("/") if isinstance(path, str) else []
+    if len(parts) != 3 or parts[0] not in _OUTPUT_ATTRS:
+        raise InputError(problem("output path", "codes/<dict-id>/<records> or features/<dict-id>/<records>",
+                                 repr(path), "Use the stage's codes_path/features_path."))
+    for part in parts[1:]:
+        _check_name(part, f"output path {path!r}")
+    return path
 
 
 def _check_name(name: str, what: str) -> str:
@@ -138,11 +176,30 @@ class Output:
     ----------
     group : zarr.Group
         The output's group; holds the data arrays and ``done`` (n_chunks,) uint8.
+    path : str, optional
+        Its path in the workspace (used in messages).
+
+    Raises
+    ------
+    UnsafeStore
+        An array of the group has an object dtype or a codec that could run code.
+    LayoutError
+        The attributes are missing or of the wrong types.
     """
 
-    def __init__(self, group: zarr.Group):
+    def __init__(self, group: zarr.Group, path: str = ""):
         self.group = group
+        self.path = path or group.path
+        _check_group_members(group, self.path)  # raw metadata, before Zarr parses it
+        for name, arr in group.arrays():  # and the parsed form, before any chunk is decoded
+            _check_safe(arr, f"{self.path}/{name}")
+        if "done" not in group or not isinstance(group["done"], zarr.Array):
+            raise LayoutError(problem(self.path, "an output with a 'done' array",
+                                      "a group without one", "Rebuild the output (overwrite=True)."))
         self._done = group["done"]
+        kind = self.path.split("/")[0]
+        if kind in _OUTPUT_ATTRS:
+            require_attrs(dict(group.attrs), _OUTPUT_ATTRS[kind], self.path)
 
     @property
     def attrs(self) -> dict:
@@ -154,17 +211,44 @@ class Output:
         """Number of row chunks (and of done flags)."""
         return int(self._done.shape[0])
 
+    def _flags(self) -> np.ndarray:
+        """Raw flag values; a flag chunk that cannot be decoded counts as 0 (to do)."""
+        try:
+            return np.asarray(self._done[:])
+        except Exception:  # one torn flag must not make the whole output unreadable
+            flags = np.zeros(self.n_chunks, dtype=np.uint8)
+            for c in range(self.n_chunks):
+                try:
+                    flags[c] = self._done[c]
+                except Exception:
+                    flags[c] = 0
+            return flags
+
     def done_flags(self) -> np.ndarray:
-        """ndarray of shape (n_chunks,), bool: which chunks are finished."""
-        return self._done[:].astype(bool)
+        """ndarray of shape (n_chunks,), bool: which chunks are finished (or skipped)."""
+        return self._flags() > 0
 
     def pending(self) -> list[int]:
         """Chunk numbers still to do, in order."""
         return [int(c) for c in np.flatnonzero(~self.done_flags())]
 
     def is_done(self, chunk: int) -> bool:
-        """Whether chunk ``chunk`` is finished."""
-        return bool(self._done[chunk])
+        """Whether chunk ``chunk`` is finished (or was skipped)."""
+        try:
+            return bool(self._done[chunk])
+        except Exception:
+            return False
+
+    def is_skipped(self, chunk: int) -> bool:
+        """Whether chunk ``chunk`` was skipped because its input was bad."""
+        try:
+            return int(self._done[chunk]) == _SKIPPED
+        except Exception:
+            return False
+
+    def skipped_chunks(self) -> list[int]:
+        """Chunk numbers that were skipped because their input was bad."""
+        return [int(c) for c in np.flatnonzero(self._flags() == _SKIPPED)]
 
     def commit(self, chunk: int, rows: slice, data: dict[str, np.ndarray]) -> None:
         """Write one chunk's data, then its done flag (the flag is always last).
@@ -177,14 +261,66 @@ class Output:
             Rows of every data array that the chunk owns (whole Zarr chunks).
         data : dict of str to ndarray
             One entry per data array of the output.
+
+        Raises
+        ------
+        StoreFault
+            A write failed (full disk, refused write); the chunk stays marked to do.
         """
-        for name, values in data.items():
-            self.group[name][rows] = values
-        self._done[chunk] = 1
+        self._write(chunk, rows, data, _DONE)
+
+    def skip(self, chunk: int, rows: slice, reason: str) -> None:
+        """Mark a chunk whose input was bad as skipped: fill values, then flag 2.
+
+        The data arrays of the chunk are reset to their fill values first (a crashed
+        earlier attempt may have left part of a chunk), so a skipped chunk never holds
+        numbers that look real.
+        """
+        fills = {}
+        for name, arr in self.group.arrays():
+            if name != "done":
+                n = len(range(*rows.indices(arr.shape[0])))
+                fills[name] = np.full((n, *arr.shape[1:]), arr.fill_value, dtype=arr.dtype)
+        self._write(chunk, rows, fills, _SKIPPED)
+
+    def _write(self, chunk: int, rows: slice, data: dict[str, np.ndarray], flag: int) -> None:
+        try:
+            for name, values in data.items():
+                self.group[name][rows] = values
+            self._done[chunk] = flag
+        except AtomlineError:
+            raise
+        except Exception as exc:
+            raise StoreFault(problem(f"{self.path}, chunk {chunk} (rows {rows.start}..{rows.stop - 1})",
+                                     "a successful write", f"{type(exc).__name__}: {exc}",
+                                     "Free space or fix the store, then rerun: the chunk is "
+                                     "not marked done and will be written again.")) from exc
+
+    def record_skips(self, rows_per_chunk: int, n_rows: int) -> dict:
+        """Write the ``skipped`` attribute from the flags (call from one process only).
+
+        Parameters
+        ----------
+        rows_per_chunk : int
+            Records per chunk (the unit the rows are reported in).
+        n_rows : int
+            Records in all.
+
+        Returns
+        -------
+        dict
+            ``{"chunks": [...], "rows": [[start, stop], ...], "n_rows": int}``
+        """
+        chunks = self.skipped_chunks()
+        ranges = [[c * rows_per_chunk, min(n_rows, (c + 1) * rows_per_chunk)] for c in chunks]
+        summary = {"chunks": chunks, "rows": ranges, "n_rows": int(sum(b - a for a, b in ranges))}
+        if self.group.attrs.get("skipped") != summary:
+            self.group.attrs["skipped"] = summary
+        return summary
 
     @property
     def complete(self) -> bool:
-        """Whether every chunk is finished."""
+        """Whether every chunk is finished (or skipped)."""
         return bool(self.done_flags().all())
 
     @property
@@ -229,6 +365,7 @@ class Output:
         return [first + int(c) for c in np.flatnonzero(~self.done_flags()[first:])]
 
 
+
 class Workspace:
     """An atomline workspace on any Zarr store.
 
@@ -259,8 +396,6 @@ class Workspace:
             Create an empty workspace if none is there (an existing one is opened).
         storage_options : dict, optional
             Passed to fsspec (credentials, endpoint). Never written into the workspace.
-            When omitted, taken from the environment (:func:`resolve_storage_options`),
-            which is how flows and their workers get them without Prefect recording them.
 
         Returns
         -------
@@ -274,7 +409,7 @@ class Workspace:
         NotFound
             No workspace at ``url`` and ``create`` is false.
         """
-        url = os.fspath(url)
+        url = _check_url(os.fspath(url), "workspace URL")
         storage_options = resolve_storage_options(url, storage_options)
         kwargs = {"storage_options": storage_options} if storage_options else {}
         try:
@@ -294,8 +429,16 @@ class Workspace:
             for top in ("data", "labels", "dictionaries", "codes", "features", "evaluations"):
                 root.require_group(top)
             return cls(root, url, storage_options)
+        except (ValueError, TypeError, KeyError) as exc:  # unreadable root metadata
+            raise LayoutError(problem(f"workspace {url}", "readable Zarr group metadata",
+                                      f"{type(exc).__name__}: {exc}",
+                                      "Point atomline at its own workspace.")) from exc
         mark = root.attrs.get(_MARK)
-        if not isinstance(mark, dict) or not isinstance(mark.get("layout"), int):
+        if root.metadata.zarr_format != 3:
+            raise LayoutError(problem(f"workspace {url}", "a Zarr v3 group",
+                                      f"Zarr format {root.metadata.zarr_format}",
+                                      "atomline workspaces are Zarr v3; link v2 arrays with link_records."))
+        if not isinstance(mark, dict) or not isinstance(mark.get("layout"), int) or isinstance(mark.get("layout"), bool):
             raise LayoutError(problem(f"workspace {url}", f"a root attribute '{_MARK}' with a layout number",
                                       "a Zarr group written by something else",
                                       "Point atomline at its own workspace; link foreign arrays with link_records."))
@@ -303,6 +446,7 @@ class Workspace:
             raise LayoutError(problem(f"workspace {url}", f"layout version ≤ {LAYOUT_VERSION}",
                                       f"version {mark['layout']}",
                                       "Upgrade atomline to read this workspace."))
+        require_attrs(mark, {"promoted": (str, type(None))}, f"workspace {url}, root {_MARK!r}")
         return cls(root, url, storage_options)
 
     def _mark(self) -> dict:
@@ -341,16 +485,25 @@ class Workspace:
         check_records(arr, f"records {name!r}")
         path = f"data/{name}"
         self._refuse_existing(path, overwrite)
-        rows = chunk_rows or _default_chunk_rows(arr.shape, arr.dtype)
-        z = self.root.create_array(path, shape=arr.shape, chunks=(rows,) + arr.shape[1:],
-                                   dtype=arr.dtype, overwrite=True)
+        rows = _default_chunk_rows(arr.shape, arr.dtype) if chunk_rows is None else chunk_rows
+        if rows < 1:
+            raise InputError(problem("chunk_rows", "a positive number of rows", str(rows),
+                                     "Use chunk_rows of 1 or more (or leave it out)."))
+        # A first streaming pass checks every value and computes the fingerprint, so bad
+        # records are refused before anything (an entry being replaced included) is touched.
         digest = _Digest(arr.shape[1:], arr.dtype)
         for start in range(0, arr.shape[0], rows):
             block = np.asarray(arr[start : start + rows])
             check_finite(block, f"records {name!r}", start)
-            z[start : start + block.shape[0]] = block
             digest.update(block)
-        z.attrs.update(_fingerprint_attrs(digest, []))
+        # Every chunk is stored, even an all-zero one, so a missing chunk object means a
+        # lost chunk, never "all fill value".
+        z = self.root.create_array(path, shape=arr.shape, chunks=(rows,) + arr.shape[1:],
+                                   dtype=arr.dtype, overwrite=True,
+                                   config={"write_empty_chunks": True})
+        for start in range(0, arr.shape[0], rows):
+            z[start : start + rows] = np.asarray(arr[start : start + rows])
+        z.attrs.update({"all_chunks_stored": True, **_fingerprint_attrs(digest, [])})
         return self.describe_records(name)
 
     def link_records(self, name: str, url: str, path: str = "", *, overwrite: bool = False,
@@ -377,18 +530,23 @@ class Workspace:
             As :meth:`add_records`.
         """
         _check_name(name, "records name")
+        _check_url(str(url), "linked store URL")
+        _check_array_path(str(path))
         arr = _open_array(url, path, storage_options)
         check_records(arr, f"linked array {url}:{path}")
         target = f"data/{name}"
         self._refuse_existing(target, overwrite)
         digest = _Digest(arr.shape[1:], arr.dtype)
         rows = arr.chunks[0]
-        for start in range(0, arr.shape[0], rows):
+        absent = []
+        for c, start in enumerate(range(0, arr.shape[0], rows)):
+            if _absent_chunk_keys(arr, slice(start, min(arr.shape[0], start + rows))):
+                absent.append(c)  # a foreign writer may leave all-fill chunks unstored
             block = arr[start : start + rows]
             check_finite(block, f"linked array {url}:{path}", start)
             digest.update(block)
         g = self.root.create_group(target, overwrite=True)
-        g.attrs.update({"link": {"url": str(url), "path": str(path)},
+        g.attrs.update({"link": {"url": str(url), "path": str(path)}, "absent_chunks": absent,
                         "shape": list(arr.shape), "dtype": str(arr.dtype),
                         **_fingerprint_attrs(digest, [])})
         return self.describe_records(name)
@@ -517,6 +675,10 @@ class Workspace:
             if not isinstance(link, dict):
                 raise LayoutError(problem(f"data/{name}", "an array or a link", "a plain group",
                                           "Re-add the records."))
+            require_attrs(dict(node.attrs), _LINK_ATTRS, f"data/{name}")
+            require_attrs(link, {"url": str, "path": str}, f"data/{name}, link")
+            _check_url(link["url"], f"data/{name}, link URL")
+            _check_array_path(link["path"])
             arr = _open_array(link["url"], link["path"], self.storage_options)
             if list(arr.shape) != node.attrs["shape"] or str(arr.dtype) != node.attrs["dtype"]:
                 raise FingerprintMismatch(problem(
@@ -524,6 +686,7 @@ class Workspace:
                     f"{list(arr.shape)} {arr.dtype}", "The linked array changed: link it again."))
         else:
             arr = node
+            require_attrs(dict(node.attrs), _RECORDS_ATTRS, f"data/{name}")
             if arr.shape[0] != _recorded_rows(arr):
                 raise LayoutError(problem(
                     f"records {name!r}", f"{_recorded_rows(arr)} rows (as fingerprinted)",
@@ -534,7 +697,51 @@ class Workspace:
 
     def records_fingerprint(self, name: str) -> str:
         """Fingerprint of ``data/<name>`` recorded when it was added or linked."""
-        return self._node(f"data/{name}", "records").attrs["fingerprint"]
+        node = self._node(f"data/{_check_name(name, 'records name')}", "records")
+        return require_attrs(dict(node.attrs), _RECORDS_ATTRS, f"data/{name}")["fingerprint"]
+
+    def read_chunk(self, name: str, chunk: int, arr: zarr.Array | None = None) -> np.ndarray:
+        """Read and check one row chunk of ``data/<name>``.
+
+        Parameters
+        ----------
+        name : str
+            Records name.
+        chunk : int
+            Row-chunk number.
+        arr : zarr.Array, optional
+            The opened records (``records(name)``), to save opening them per chunk.
+
+        Returns
+        -------
+        ndarray of shape (rows, ...)
+
+        Raises
+        ------
+        BadChunk
+            The chunk's object is missing from the store, cannot be decoded, or holds
+            NaN/Inf; the message names the records, the chunk and its rows.
+        """
+        arr = self.records(name) if arr is None else arr
+        rows = next(iter_row_chunks(arr, [chunk]))[1]
+        where = f"records {name!r}, chunk {chunk} (rows {rows.start}..{rows.stop - 1})"
+        fix = "Restore the chunk from its source, or rerun with on_bad_chunk='skip' (--on-bad-chunk skip)."
+        node = self.root[f"data/{name}"]
+        if node.attrs.get("all_chunks_stored") or "absent_chunks" in node.attrs:
+            if chunk not in node.attrs.get("absent_chunks", []):
+                missing = _absent_chunk_keys(arr, rows)
+                if missing:
+                    raise BadChunk(problem(where, "a stored chunk", f"no object at {missing[0]!r}", fix))
+        try:
+            block = np.asarray(arr[rows])
+        except Exception as exc:
+            raise BadChunk(problem(where, "a chunk that decodes", f"{type(exc).__name__}: {exc}",
+                                   fix)) from exc
+        finite = np.isfinite(block.reshape(block.shape[0], -1)).all(axis=1)
+        if not finite.all():
+            row = rows.start + int(np.flatnonzero(~finite)[0])
+            raise BadChunk(problem(f"{where}, row {row}", "finite values", "NaN or Inf", fix))
+        return block
 
     def describe_records(self, name: str) -> dict:
         """Plain-JSON facts about ``data/<name>``."""
@@ -579,7 +786,11 @@ class Workspace:
 
     def labels(self, name: str) -> np.ndarray:
         """ndarray of shape (n,), int64: the labels of ``data/<name>``."""
-        return np.asarray(self._node(f"labels/{name}", "labels")[:])
+        node = self._node(f"labels/{_check_name(name, 'labels name')}", "labels")
+        if not isinstance(node, zarr.Array) or node.ndim != 1 or np.dtype(node.dtype).kind not in "iu":
+            raise LayoutError(problem(f"labels/{name}", "a 1-D integer array", f"{node}",
+                                      "Add the labels again (add_labels, overwrite=True)."))
+        return np.asarray(node[:])
 
     def has_labels(self, name: str) -> bool:
         """Whether ``labels/<name>`` exists."""
@@ -606,9 +817,17 @@ class Workspace:
         """
         _check_name(dict_id, "dictionary id")
         path = f"dictionaries/{dict_id}"
+        _check_atoms(np.asarray(atoms), path)
+        for key, value in (arrays or {}).items():
+            value = np.asarray(value)
+            if value.dtype.kind not in "biuf" or not np.isfinite(value).all():
+                raise InputError(problem(f"{path}, array {key!r}", "finite numbers",
+                                         f"dtype {value.dtype}" + ("" if value.dtype.kind not in "f" else " with NaN/Inf"),
+                                         "Fix the preprocessing before storing the dictionary."))
         if path in self.root and self.root[path].attrs.get("complete"):
             raise OutputExists(problem(path, "a new dictionary id", "a finished dictionary",
                                        "Use another id, or reuse the stored one."))
+        self._refuse_leased(path)
         g = self.root.create_group(path, overwrite=True)
         atoms = np.ascontiguousarray(atoms, dtype=np.float64)
         g.create_array("atoms", data=atoms)
@@ -632,14 +851,27 @@ class Workspace:
         -------
         StoredDictionary
         """
-        g = self._node(f"dictionaries/{_check_name(dict_id, 'dictionary id')}", "dictionary")
+        path = f"dictionaries/{_check_name(dict_id, 'dictionary id')}"
+        g = self._node(path, "dictionary")
         attrs = dict(g.attrs)
-        if not attrs.get("complete"):
-            raise NotFound(problem(f"dictionaries/{dict_id}", "a complete dictionary",
+        if attrs.get("complete") is not True:
+            raise NotFound(problem(path, "a complete dictionary",
                                    "one whose training did not finish",
                                    "Run the train flow again; it resumes."))
-        arrays = {k: np.asarray(g[f"prep_{k}"][:]) for k in attrs.get("prep_arrays", [])}
-        return StoredDictionary(dict_id, np.asarray(g["atoms"][:]), attrs, arrays)
+        require_attrs(attrs, _DICTIONARY_ATTRS, path, _DICTIONARY_OPTIONAL)
+        names = attrs["prep_arrays"]
+        if not all(isinstance(k, str) for k in names):
+            raise LayoutError(problem(f"{path}, attribute 'prep_arrays'", "a list of names",
+                                      repr(names)[:200], "Train the dictionary again."))
+        arrays = {k: np.asarray(self._node(f"{path}/prep_{_check_name(k, 'array name')}", "array")[:])
+                  for k in names}
+        atoms = np.asarray(self._node(f"{path}/atoms", "atoms")[:])
+        _check_atoms(atoms, path, LayoutError)
+        if atoms.shape[0] != attrs.get("n_atoms", atoms.shape[0]) or (
+                atoms.shape[1] != attrs.get("n_features", atoms.shape[1])):
+            raise LayoutError(problem(f"{path}/atoms", f"shape ({attrs['n_atoms']}, {attrs.get('n_features')})",
+                                      f"shape {atoms.shape}", "The dictionary was altered; train it again."))
+        return StoredDictionary(dict_id, atoms, attrs, arrays)
 
     def has_dictionary(self, dict_id: str) -> bool:
         """Whether a complete dictionary ``dict_id`` exists."""
@@ -656,12 +888,45 @@ class Workspace:
         """Id of the promoted dictionary, or ``None``."""
         return self._mark().get("promoted")
 
-    def promote(self, dict_id: str) -> None:
-        """Point the workspace at ``dict_id`` (which must be complete)."""
+    def promote(self, dict_id: str, *, evaluation: str | None = None) -> None:
+        """Point the workspace at ``dict_id``.
+
+        Parameters
+        ----------
+        dict_id : str
+            A complete dictionary.
+        evaluation : str, optional
+            Run id of the evaluation that justifies the move. When given (the nightly
+            gate always gives it), the pointer moves only if that evaluation is complete,
+            measured ``dict_id``, and measured the features that are stored now, complete,
+            under ``features/<dict_id>/<records>`` (same fingerprint).
+
+        Raises
+        ------
+        NotFound, FingerprintMismatch, InputError
+            Something the promotion rests on is missing or incomplete; the pointer is
+            left where it was.
+        """
         self.load_dictionary(dict_id)
-        mark = self._mark()
-        mark["promoted"] = dict_id
-        self.root.attrs[_MARK] = mark
+        if evaluation is not None:
+            attrs = self.evaluation(evaluation)
+            where = f"evaluations/{evaluation}"
+            if attrs["dict_id"] != dict_id:
+                raise FingerprintMismatch(problem(where, f"an evaluation of {dict_id}",
+                                                  f"one of {attrs['dict_id']}", "Evaluate the candidate first."))
+            path = f"features/{dict_id}/{attrs['records']}"
+            out = self.output(path)
+            if not out.complete:
+                raise InputError(problem(path, "complete features", "unfinished features",
+                                         "Finish the pool flow before promoting."))
+            if out.attrs["fingerprint"] != attrs.get("features_fingerprint"):
+                raise FingerprintMismatch(problem(where, f"features fingerprint {out.attrs['fingerprint']}",
+                                                  str(attrs.get("features_fingerprint")),
+                                                  "The features changed since; evaluate again."))
+        with self.lease("promoted", run=f"promote {dict_id}"):  # one pointer move at a time
+            mark = self._mark()
+            mark["promoted"] = dict_id
+            self.root.attrs[_MARK] = mark
 
     # ------------------------------------------------------------------ outputs
     def create_output(self, path: str, *, n_rows: int, chunk_rows: int,
@@ -701,10 +966,18 @@ class Workspace:
         -------
         Output
         """
+        _check_output_path(path)
         if covers is not None:
             attrs = dict(attrs, covers=dict(covers))
-        if path in self.root:
-            old = Output(self.root[path])
+        if not (isinstance(attrs, dict) and isinstance(attrs.get("fingerprint"), str)):
+            raise InputError(problem(f"{path}, attrs", "a dict with a 'fingerprint' string",
+                                     repr(attrs)[:200], "Pass the output's fingerprint."))
+        if not (n_rows >= 1 and chunk_rows >= 1):
+            raise InputError(problem(path, "at least one row and one row per chunk",
+                                     f"n_rows={n_rows}, chunk_rows={chunk_rows}", "Add records first."))
+        self._refuse_leased(path)
+        if self.has_output(path):
+            old = self.output(path)
             same = old.attrs.get("fingerprint") == attrs["fingerprint"]
             if same and not overwrite and covers is not None:
                 same = self._extend_cover(old, covers, n_rows)
@@ -715,15 +988,17 @@ class Workspace:
                     path, f"an output made from the same inputs (fingerprint {attrs['fingerprint']})",
                     f"one made from other inputs (fingerprint {old.attrs.get('fingerprint')})",
                     "Pass overwrite=True (--overwrite) to replace it, or write elsewhere."))
-        g = self.root.create_group(path, overwrite=True)
+        # Attributes first, the done array last: a crash part-way leaves a group with no
+        # done array, which has_output does not count and the next run recreates.
+        g = self.root.create_group(path, overwrite=True, attributes=_plain(
+            dict(attrs, created=_now(), version=_package_version())))
         for name, (tail, dtype) in arrays.items():
             fill = -1 if name == "index" else 0
             g.create_array(name, shape=(n_rows, *tail), chunks=(chunk_rows, *tail),
                            dtype=dtype, fill_value=fill)
         n_chunks = -(-n_rows // chunk_rows)
         g.create_array("done", shape=(n_chunks,), chunks=(1,), dtype="u1", fill_value=0)
-        g.attrs.update(_plain(dict(attrs, created=_now(), version=_package_version())))
-        return Output(g)
+        return Output(g, path)
 
     def _extend_cover(self, out: Output, covers: dict, n_rows: int) -> bool:
         """Grow ``out`` when the records it covers are a prefix of ``covers``.
@@ -739,16 +1014,20 @@ class Workspace:
         if prefix not in history or now not in history or prefix["rows"] > now["rows"]:
             return False
         out.grow(n_rows)
-        out.group.attrs["covers"] = dict(covers)  # last: a grow cut short is redone
+        out.group.attrs.update({"covers": dict(covers),  # last: a grow cut short is redone
+                                "records_fingerprint": covers["fingerprint"]})
         return True
 
     def output(self, path: str) -> Output:
-        """Open an existing output."""
-        return Output(self._node(path, "output"))
+        """Open an existing output (its arrays and attributes are checked first)."""
+        node = self._node(_check_output_path(path), "output")
+        if not isinstance(node, zarr.Group):
+            raise LayoutError(problem(path, "an output group", "an array", "Rebuild the output."))
+        return Output(node, path)
 
     def has_output(self, path: str) -> bool:
-        """Whether an output group exists at ``path``."""
-        return path in self.root and "done" in self.root[path]
+        """Whether a fully created output group exists at ``path``."""
+        return path in self.root and "done" in self.root[_check_output_path(path)]
 
     # ------------------------------------------------------------------ evaluations
     def append_evaluation(self, attrs: dict, arrays: dict[str, np.ndarray]) -> str:
@@ -772,15 +1051,111 @@ class Workspace:
         """Attributes of every complete evaluation, oldest first."""
         out = []
         for key in self.root["evaluations"].group_keys():
-            attrs = dict(self.root[f"evaluations/{key}"].attrs)
-            if attrs.get("complete"):
-                out.append(attrs)
+            try:
+                attrs = self.evaluation(key)
+            except (NotFound, LayoutError):
+                continue  # a crash mid-write leaves an incomplete group: not an evaluation
+            out.append(attrs)
         return sorted(out, key=lambda a: a["run_id"])
+
+    def evaluation(self, run_id: str) -> dict:
+        """Attributes of one complete evaluation.
+
+        Raises
+        ------
+        NotFound
+            No evaluation of that id, or one whose writing did not finish.
+        """
+        path = f"evaluations/{_check_name(run_id, 'evaluation id')}"
+        try:
+            attrs = dict(self._node(path, "evaluation").attrs)
+        except (ValueError, TypeError) as exc:  # unreadable metadata (torn or foreign)
+            raise LayoutError(problem(path, "readable metadata", str(exc), "Ignore or delete it.")) from exc
+        if attrs.get("complete") is not True:
+            raise NotFound(problem(path, "a complete evaluation", "one whose writing did not finish",
+                                   "Run the evaluation again; incomplete ones are ignored."))
+        return require_attrs(attrs, _EVALUATION_ATTRS, path)
 
     def evaluation_arrays(self, run_id: str) -> dict[str, np.ndarray]:
         """The arrays of one evaluation (confusion matrices, …)."""
+        self.evaluation(run_id)
         g = self._node(f"evaluations/{run_id}", "evaluation")
-        return {k: np.asarray(g[k][:]) for k in g.array_keys()}
+        _check_group_members(g, f"evaluations/{run_id}")
+        return {k: np.asarray(self._node(f"evaluations/{run_id}/{k}", "array")[:])
+                for k in g.array_keys()}
+
+    # ------------------------------------------------------------------ leases
+    def lease(self, output: str, *, run: str | None = None, ttl: float = 120.0,
+              break_existing: bool = False) -> _leases.Lease:
+        """Take the write lease of an output; use it as a context manager.
+
+        One run at a time may write an output (``codes/…``, ``features/…``,
+        ``dictionaries/<id>``, or ``promoted`` for the pointer). While held, a heartbeat
+        thread renews it every ``ttl / 4`` seconds; it is released on exit.
+
+        Parameters
+        ----------
+        output : str
+            Workspace path of the output.
+        run : str, optional
+            Name of the run, shown to anyone refused (default: this process).
+        ttl : float
+            Seconds without a heartbeat after which the lease counts as abandoned.
+        break_existing : bool
+            Take the lease even from a live holder (when you know it is dead).
+
+        Returns
+        -------
+        Lease
+            ``with ws.lease("codes/d-1/vib", run="nightly"): ...``
+
+        Raises
+        ------
+        LeaseHeld
+            A live run holds it; the message names its host, pid, run and start time.
+
+        Notes
+        -----
+        Expired leases (heartbeat older than the TTL, or a holder process on this host
+        that is gone) are broken silently; finished chunks are never touched by a
+        break. See :mod:`atomline.stages._leases` for what each kind of store guarantees.
+        """
+        if not (isinstance(ttl, (int, float)) and ttl > 0):
+            raise InputError(problem("lease ttl", "a positive number of seconds", repr(ttl), "Pass ttl > 0."))
+        return _leases.acquire(self._lease_store(), self._lease_name(output),
+                               run=run or f"pid {os.getpid()}", ttl=float(ttl),
+                               break_existing=break_existing, registry=_HELD_LEASES)
+
+    def lease_holder(self, output: str) -> dict | None:
+        """Who holds the lease of ``output`` (host, pid, run, started, heartbeat, ttl), or None."""
+        held = self._lease_store().read(self._lease_name(output))
+        return None if held is None else dict(held.to_json(), expired=held.expired())
+
+    def break_lease(self, output: str) -> dict | None:
+        """Remove the lease of ``output`` whoever holds it; returns what was removed.
+
+        Only the lease object is deleted: chunks already marked done stay done, and the
+        next run resumes from them.
+        """
+        holder = self.lease_holder(output)
+        if holder is not None:
+            self._lease_store().delete(self._lease_name(output))
+        return holder
+
+    def _lease_name(self, output: str) -> str:
+        if output == "promoted":
+            return output
+        parts = output.split("/") if isinstance(output, str) else []
+        if len(parts) == 2 and parts[0] == "dictionaries":
+            _check_name(parts[1], "dictionary id")
+            return output
+        return _check_output_path(output)
+
+    def _lease_store(self) -> _leases._LeaseStore:
+        return _leases._LeaseStore(self.root.store, self.root.store_path.path)
+
+    def _refuse_leased(self, path: str) -> None:
+        _leases.check_not_leased(self._lease_store(), path, _HELD_LEASES)
 
     # ------------------------------------------------------------------ decisions
     def append_decision(self, attrs: dict) -> str:
@@ -896,10 +1271,19 @@ class Workspace:
 
     # ------------------------------------------------------------------ helpers
     def _node(self, path: str, what: str) -> Any:
-        if path not in self.root:
+        _check_stored_node(self.root.store, f"{self.root.store_path.path}/{path}", path)
+        try:
+            present = path in self.root
+            node = self.root[path] if present else None
+        except (ValueError, TypeError, KeyError) as exc:  # metadata zarr cannot parse
+            raise LayoutError(problem(path, f"a readable {what}", f"{type(exc).__name__}: {exc}"[:300],
+                                      "The store was altered or written by something else.")) from exc
+        if not present:
             raise NotFound(problem(path, f"an existing {what}", "nothing at that path",
                                    f"List the workspace (atomline show {self.url}) for what is there."))
-        return self.root[path]
+        if isinstance(node, zarr.Array):
+            _check_safe(node, path)
+        return node
 
     def _refuse_existing(self, path: str, overwrite: bool) -> None:
         if path in self.root and not overwrite:
@@ -940,6 +1324,119 @@ def check_finite(block: np.ndarray, where: str, first_row: int) -> None:
         row = first_row + int(np.flatnonzero(~finite)[0])
         raise InputError(problem(f"{where}, row {row}", "finite values", "NaN or Inf",
                                  "Clean or drop the bad rows first."))
+
+
+def _check_safe(arr: zarr.Array, where: str) -> None:
+    """Refuse an array whose decoding could run code (see :mod:`._safety`)."""
+    check_array_metadata(arr.metadata.to_dict(), where)
+
+
+def _check_document(data: bytes | None, name: str, where: str) -> None:
+    """Check one raw metadata document (``zarr.json`` or ``.zarray``) before Zarr parses it."""
+    if data is None:
+        return
+    try:
+        doc = json.loads(data)
+    except ValueError as exc:
+        raise LayoutError(problem(where, f"a JSON {name}", f"unreadable bytes ({exc})",
+                                  "The store was altered; rebuild this entry.")) from exc
+    if not isinstance(doc, dict):
+        raise LayoutError(problem(where, f"a JSON object in {name}", type(doc).__name__,
+                                  "The store was altered; rebuild this entry."))
+    if name == ".zarray" or doc.get("node_type") == "array":
+        check_array_metadata(doc, where)
+
+
+def _check_stored_node(store: Any, path: str, where: str) -> None:
+    """Check the raw metadata of the node at ``path`` of a zarr store (if it is an array)."""
+    from zarr.core.buffer import default_buffer_prototype
+    from zarr.core.sync import sync
+
+    for name in ("zarr.json", ".zarray"):
+        buf = sync(store.get(f"{path}/{name}".lstrip("/"), prototype=default_buffer_prototype()))
+        _check_document(None if buf is None else buf.to_bytes(), name, where)
+
+
+def _check_group_members(group: zarr.Group, where: str) -> None:
+    """Check the raw metadata of every child of ``group`` before Zarr opens them."""
+    from zarr.core.sync import sync
+
+    async def children() -> list[str]:
+        return [c async for c in group.store.list_dir(group.path)]
+
+    for child in sync(children()):
+        if child not in ("zarr.json", ".zattrs", ".zgroup", ".zarray"):
+            _check_stored_node(group.store, f"{group.path}/{child}", f"{where}/{child}")
+
+
+def _check_linked_metadata(url: str, path: str, storage_options: dict | None) -> None:
+    """Check the raw metadata of a linked array with fsspec, before Zarr parses it."""
+    import fsspec
+
+    try:
+        fs, base = fsspec.core.url_to_fs(url, **(storage_options or {}) if "://" in url else {})
+    except Exception:  # an unknown protocol: zarr.open reports it next
+        return
+    where = f"linked array {url}:{path}"
+    for name in ("zarr.json", ".zarray"):
+        key = "/".join(p for p in (base.rstrip("/"), path.strip("/"), name) if p)
+        try:
+            data = fs.cat_file(key)
+        except (FileNotFoundError, IsADirectoryError, NotADirectoryError):
+            continue
+        _check_document(data, name, where)
+
+
+def _check_atoms(atoms: np.ndarray, where: str, error: type = InputError) -> None:
+    """Atoms must be a non-empty (k, d) array of finite floats."""
+    if atoms.ndim != 2 or 0 in atoms.shape or atoms.dtype.kind not in "f" or not np.isfinite(atoms).all():
+        raise error(problem(f"{where}/atoms", "a non-empty (k, d) array of finite floats",
+                            f"shape {atoms.shape}, dtype {atoms.dtype}"
+                            + (" with NaN/Inf" if atoms.dtype.kind == "f" and not np.isfinite(atoms).all() else ""),
+                            "Train the dictionary again."))
+
+
+def _check_url(url: str, what: str) -> str:
+    """Refuse URLs that carry credentials or climb out of their base with '..'."""
+    if not isinstance(url, str) or not url or "\0" in url:
+        raise InputError(problem(what, "a directory or fsspec URL", repr(url), "Give a URL."))
+    if "://" in url:
+        protocol, rest = url.split("://", 1)
+        authority = rest.split("/", 1)[0]
+        if "@" in authority:
+            raise InputError(problem(what, "a URL without credentials", f"{protocol}://…@… (user info in the URL)",
+                                     "Pass credentials through storage_options; they are never stored."))
+        if ".." in rest.split("/"):
+            raise InputError(problem(what, "a URL without '..' segments", repr(url),
+                                     "Write the URL without '..'."))
+    return url
+
+
+def _check_array_path(path: str) -> str:
+    """An array path inside a store: relative, no '..', no backslashes."""
+    if not isinstance(path, str) or path.startswith("/") or "\\" in path or "\0" in path \
+            or ".." in path.split("/") or "://" in path:
+        raise InputError(problem("array path", "a relative path inside the store (no '..', no leading '/')",
+                                 repr(path), "Give the path of the array inside its store."))
+    return path
+
+
+def _absent_chunk_keys(arr: zarr.Array, rows: slice) -> list[str]:
+    """Store keys of the stored chunks (or shards) holding ``rows`` that are not there."""
+    import itertools
+
+    from zarr.core.sync import sync
+
+    meta = arr.metadata
+    outer = meta.chunk_grid.chunk_shape if meta.zarr_format == 3 else meta.chunks
+    first, last = rows.start // outer[0], (rows.stop - 1) // outer[0]
+    others = [range(-(-n // c)) for n, c in zip(arr.shape[1:], outer[1:])]
+    missing = []
+    for coords in itertools.product(range(first, last + 1), *others):
+        key = meta.encode_chunk_key(coords)
+        if not sync((arr.store_path / key).exists()):
+            missing.append(f"{arr.store_path.path}/{key}".lstrip("/"))
+    return missing
 
 
 def _recorded_rows(arr: zarr.Array) -> int:
@@ -993,16 +1490,12 @@ def resolve_storage_options(url: str, given: dict | None = None) -> dict | None:
     Raises
     ------
     InputError
-        The URL carries a password, or the environment holds something other than a
-        JSON object (the value itself is not repeated in the message).
+        The environment holds something other than a JSON object (the value itself is
+        not repeated in the message). URLs carrying credentials are refused on opening.
     """
     url = str(url)
     if "://" not in url:
         return None
-    if _url_has_secret(url):
-        raise InputError(problem("store URL", "a URL without user:password",
-                                 "credentials inside the URL (not repeated here)",
-                                 f"Put them in ${STORAGE_OPTIONS_ENV} or in fsspec's configuration."))
     if given:
         return dict(given)
     text = os.environ.get(STORAGE_OPTIONS_ENV, "").strip()
@@ -1028,18 +1521,10 @@ def resolve_storage_options(url: str, given: dict | None = None) -> dict | None:
     return options
 
 
-def _url_has_secret(url: str) -> bool:
-    from urllib.parse import urlsplit
-
-    try:
-        return urlsplit(url).password is not None
-    except ValueError:  # an unparsable port: not a credential, leave it to fsspec
-        return False
-
-
 def _open_array(url: str, path: str, storage_options: dict | None) -> zarr.Array:
     storage_options = resolve_storage_options(url, storage_options)
-    kwargs = {"storage_options": storage_options} if storage_options else {}
+    kwargs = {"storage_options": storage_options} if storage_options and "://" in str(url) else {}
+    _check_linked_metadata(str(url), str(path), storage_options)
     try:
         node = zarr.open(store=url, path=path or None, mode="r", **kwargs)
     except Exception as exc:  # zarr raises several kinds for a missing or foreign node
@@ -1048,6 +1533,7 @@ def _open_array(url: str, path: str, storage_options: dict | None) -> zarr.Array
     if not isinstance(node, zarr.Array):
         raise InputError(problem(f"{url}:{path}", "a Zarr array", "a group",
                                  "Give the path of the array inside the store."))
+    _check_safe(node, f"linked array {url}:{path}")
     return node
 
 

@@ -94,7 +94,6 @@ def test_pictures_are_append_only(digits_report):
 def drifting(digits_workspace):
     """The digits workspace's dictionary; records 0..1199 as seen, then two kinds of
     'new' rows: more digits (no drift) and digits overlaid with strong noise (drift)."""
-    from atomline.stages.workspace import Workspace
 
     ws, dict_id = digits_workspace
     images = ws.records("digits")[:]

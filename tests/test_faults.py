@@ -1,0 +1,176 @@
+"""Store faults: failed writes, missing and corrupt input chunks, zero and constant records."""
+
+from __future__ import annotations
+
+import errno
+import os
+import shutil
+
+import numpy as np
+import pytest
+import zarr
+from conftest import store_snapshot
+from zarr.storage import LocalStore
+
+from atomline.stages import encode, evaluate, pool, train
+from atomline.stages.errors import BadChunk, StoreFault
+from atomline.stages.workspace import Workspace
+
+TRAIN = dict(n_atoms=16, patch_size=128, stride=128, sample_patches=1000, seed=0,
+             coder_options={"n_nonzero": 3})
+
+
+class _FullDisk(LocalStore):
+    """A local store whose writes of chosen keys fail as on a full disk."""
+
+    failing: tuple[str, ...] = ()
+
+    async def set(self, key, value, byte_range=None):
+        if any(key.startswith(prefix) for prefix in self.failing):
+            raise OSError(errno.ENOSPC, "No space left on device", key)
+        return await super().set(key, value)
+
+
+def _open_with(store_cls, url: str, failing: tuple[str, ...]) -> Workspace:
+    store = store_cls(url)
+    store.failing = failing
+    return Workspace(zarr.open_group(store=store, mode="r+"), url)
+
+
+@pytest.fixture(scope="module")
+def prepared(tmp_path_factory, demo_small):
+    X, y = demo_small
+    url = str(tmp_path_factory.mktemp("faults") / "ws.zarr")
+    ws = Workspace.open(url, create=True)
+    ws.add_records("vib", X[:160], chunk_rows=20)
+    ws.add_labels("vib", y[:160])
+    dict_id = train.train_dictionary(ws, "vib", **TRAIN)["dict_id"]
+    reference = str(tmp_path_factory.mktemp("faults-ref") / "ws.zarr")
+    shutil.copytree(url, reference)
+    p = encode.prepare_encode(reference, "vib", dict_id)
+    encode.encode_chunks(reference, "vib", dict_id, p["pending"])
+    return url, reference, dict_id
+
+
+def _copy(url, tmp_path) -> str:
+    target = str(tmp_path / "ws.zarr")
+    shutil.copytree(url, target)
+    return target
+
+
+def _codes(url, dict_id):
+    path = encode.codes_path(dict_id, "vib")
+    return {k: v for k, v in store_snapshot(Workspace.open(url)).items()
+            if k.startswith(path + "/") and "/c/" in k}
+
+
+@pytest.mark.parametrize("failing_array", ["value", "done"])
+def test_failed_write_leaves_no_chunk_marked_done(prepared, tmp_path, failing_array):
+    url0, reference, dict_id = prepared
+    url = _copy(url0, tmp_path)
+    p = encode.prepare_encode(url, "vib", dict_id)
+    encode.encode_chunks(url, "vib", dict_id, p["pending"][:3])
+    # The disk fills up: writes of chunk 3 of the value (or done) array fail from now on.
+    prefix = f"codes/{dict_id}/vib/{failing_array}/c/3"
+    ws = _open_with(_FullDisk, url, (prefix,))
+    with pytest.raises(StoreFault, match=r"chunk 3 .*No space left") as caught:
+        encode.encode_chunks(ws, "vib", dict_id, p["pending"])
+    assert "not marked done" in str(caught.value)
+    flags = Workspace.open(url).output(encode.codes_path(dict_id, "vib")).done_flags()
+    np.testing.assert_array_equal(flags, [True, True, True] + [False] * (flags.size - 3))
+    # Space is freed: the rerun writes chunk 3 again and ends with the reference bytes.
+    again = encode.encode_chunks(url, "vib", dict_id, p["pending"])
+    assert again["skipped"] == 3
+    assert _codes(url, dict_id) == _codes(reference, dict_id)
+
+
+def _damage(url, dict_id, chunk, how):
+    path = os.path.join(url, "data", "vib", "c", str(chunk), "0")
+    if how == "missing":
+        os.remove(path)
+    else:
+        with open(path, "r+b") as fh:
+            fh.seek(4)
+            fh.write(b"\xff" * 16)
+
+
+@pytest.mark.parametrize("how", ["missing", "corrupt"])
+def test_bad_input_chunk_stops_with_its_coordinates(prepared, tmp_path, how):
+    url0, _, dict_id = prepared
+    url = _copy(url0, tmp_path)
+    _damage(url, dict_id, 5, how)
+    p = encode.prepare_encode(url, "vib", dict_id)
+    with pytest.raises(BadChunk, match=r"records 'vib', chunk 5 \(rows 100\.\.119\)"):
+        encode.encode_chunks(url, "vib", dict_id, p["pending"])
+    out = Workspace.open(url).output(encode.codes_path(dict_id, "vib"))
+    assert out.pending()[0] == 5 and not out.is_done(5)
+
+
+@pytest.mark.parametrize("how", ["missing", "corrupt"])
+def test_bad_input_chunk_skipped_and_recorded(prepared, tmp_path, how):
+    url0, reference, dict_id = prepared
+    url = _copy(url0, tmp_path)
+    _damage(url, dict_id, 5, how)
+    p = encode.prepare_encode(url, "vib", dict_id)
+    result = encode.encode_chunks(url, "vib", dict_id, p["pending"], on_bad_chunk="skip")
+    assert result["bad"] == 1 and result["encoded"] == p["n_chunks"] - 1
+    again = encode.prepare_encode(url, "vib", dict_id)  # lists the skipped rows
+    assert again["pending"] == [] and again["skipped_rows"] == 20
+    ws = Workspace.open(url)
+    codes = ws.output(encode.codes_path(dict_id, "vib"))
+    assert codes.attrs["skipped"] == {"chunks": [5], "rows": [[100, 120]], "n_rows": 20}
+    # The skipped chunk holds fill values only; every other chunk equals the reference.
+    P = codes.attrs["patches_per_record"]
+    assert (codes.group["count"][100 * P : 120 * P] == 0).all()
+    assert (codes.group["index"][100 * P : 120 * P] == -1).all()
+    ref = Workspace.open(reference).output(encode.codes_path(dict_id, "vib")).group
+    keep = np.r_[0 : 100 * P, 120 * P : 160 * P]
+    np.testing.assert_array_equal(codes.group["value"][:][keep], ref["value"][:][keep])
+    # Pooling carries the skip over; the evaluation says how many rows it lacked.
+    pp = pool.prepare_pool(ws, "vib", dict_id, regions=2)
+    pool.pool_chunks(ws, "vib", dict_id, pp["pending"])
+    assert pool.prepare_pool(ws, "vib", dict_id, regions=2)["skipped_rows"] == 20
+    feats = ws.output(pool.features_path(dict_id, "vib"))
+    assert feats.skipped_chunks() == [5] and (feats.group["values"][100:120] == 0).all()
+    report = evaluate.evaluate_features(ws, "vib", dict_id)
+    assert report["rows_lacking"] == 20
+    assert report["n_rows"] == 140
+    assert ws.evaluation(report["run_id"])["rows_lacking"] == 20
+
+
+def test_torn_done_flag_counts_as_to_do(prepared, tmp_path):
+    url0, reference, dict_id = prepared
+    url = _copy(url0, tmp_path)
+    p = encode.prepare_encode(url, "vib", dict_id)
+    encode.encode_chunks(url, "vib", dict_id, p["pending"])
+    flag = os.path.join(url, "codes", dict_id, "vib", "done", "c", "2")
+    with open(flag, "wb") as fh:
+        fh.write(b"\x28\xb5")  # the first bytes of a zstd frame, then nothing
+    out = Workspace.open(url).output(encode.codes_path(dict_id, "vib"))
+    assert out.pending() == [2]
+    redo = encode.encode_chunks(url, "vib", dict_id, p["pending"])
+    assert redo["encoded"] == 1
+    assert _codes(url, dict_id) == _codes(reference, dict_id)
+
+
+@pytest.mark.parametrize("scale", [1e-20, 1.0, 1e15])
+def test_zero_and_constant_records_give_finite_codes(memory_url, demo_small, scale):
+    """Stage-level robustness: zero rows, constant rows and extreme float32 scales."""
+    X, _ = demo_small
+    ws = Workspace.open(memory_url, create=True)
+    records = (X[:64] * np.float32(scale)).astype(np.float32)
+    records[3] = 0.0
+    records[10] = np.float32(2.5 * scale)
+    records[20:24] = 0.0
+    ws.add_records("vib", records, chunk_rows=16)
+    dict_id = train.train_dictionary(ws, "vib", n_atoms=16, patch_size=128, stride=128,
+                                     sample_patches=800, seed=0, coder_options={"n_nonzero": 3})["dict_id"]
+    p = encode.prepare_encode(ws, "vib", dict_id)
+    encode.encode_chunks(ws, "vib", dict_id, p["pending"])
+    codes = ws.output(encode.codes_path(dict_id, "vib")).group
+    value, count = codes["value"][:], codes["count"][:]
+    assert np.isfinite(value).all()
+    assert (count <= 3).all()
+    pp = pool.prepare_pool(ws, "vib", dict_id, regions=2)
+    pool.pool_chunks(ws, "vib", dict_id, pp["pending"])
+    assert np.isfinite(ws.output(pool.features_path(dict_id, "vib")).group["values"][:]).all()

@@ -1,0 +1,155 @@
+"""SIGKILL each stage at chosen store writes, rerun, and compare with an uninterrupted run.
+
+A child process runs a stage function on a local workspace with ``LocalStore.set``
+wrapped so that the process SIGKILLs itself just before the N-th write whose key matches
+a pattern: the kill lands at a known point (between a chunk's data and its done flag,
+between a dictionary's atoms and its attributes, before the pointer moves…). The
+children run in parallel; each rerun happens here, with plain stage functions.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import textwrap
+
+import pytest
+from conftest import store_snapshot
+
+from atomline.stages import encode, evaluate, pool, train
+from atomline.stages.workspace import Workspace
+
+pytestmark = pytest.mark.slow
+
+TRAIN = dict(n_atoms=16, patch_size=128, stride=128, sample_patches=1000, seed=0,
+             coder_options={"n_nonzero": 3})
+
+_CHILD = textwrap.dedent("""
+    import os, re, signal, sys
+    from zarr.storage import LocalStore
+
+    url, stage, pattern, nth = sys.argv[1], sys.argv[2], re.compile(sys.argv[3]), int(sys.argv[4])
+    seen = 0
+    _set = LocalStore.set
+
+    async def set_then_maybe_die(self, key, value, byte_range=None):
+        global seen
+        if pattern.search(key):
+            seen += 1
+            if seen == nth:
+                os.kill(os.getpid(), signal.SIGKILL)
+        return await _set(self, key, value)
+
+    LocalStore.set = set_then_maybe_die
+    from test_kill_matrix import run_stage
+    run_stage(url, stage)
+    sys.exit(3)  # the kill point was never reached
+""")
+
+
+def run_stage(url: str, stage: str) -> dict:
+    """The stage sequences the matrix kills (shared by the children and the reruns)."""
+    dict_id = train.train_dictionary(url, "vib", **TRAIN)["dict_id"]
+    if stage == "train":
+        return {"dict_id": dict_id}
+    if stage in ("encode", "nightly"):
+        p = encode.prepare_encode(url, "vib", dict_id)
+        encode.encode_chunks(url, "vib", dict_id, p["pending"])
+    if stage in ("pool", "nightly"):
+        p = pool.prepare_pool(url, "vib", dict_id, regions=2)
+        pool.pool_chunks(url, "vib", dict_id, p["pending"])
+    if stage in ("evaluate", "nightly"):
+        run_id = evaluate.evaluate_features(url, "vib", dict_id)["run_id"]
+        if stage == "nightly":
+            Workspace.open(url).promote(dict_id, evaluation=run_id)
+        return {"dict_id": dict_id, "run_id": run_id}
+    return {"dict_id": dict_id}
+
+
+# (stage, key pattern, n-th matching write to die before, what the point is)
+KILLS = [
+    ("train", r"dictionaries/[^/]+/zarr\.json$", 2, "atoms written, attributes not"),
+    ("train", r"dictionaries/[^/]+/zarr\.json$", 3, "attributes written, complete flag not"),
+    ("encode", r"codes/[^/]+/vib/value/c/", 3, "chunk 2: index written, value not"),
+    ("encode", r"codes/[^/]+/vib/done/c/", 5, "chunk 4: data written, done flag not"),
+    ("pool", r"features/[^/]+/vib/values/c/", 2, "mid chunk 1"),
+    ("pool", r"features/[^/]+/vib/done/c/", 4, "chunk 3: data written, done flag not"),
+    ("evaluate", r"evaluations/[^/]+/confusion_raw/", 1, "arrays half written"),
+    ("evaluate", r"evaluations/[^/]+/zarr\.json$", 3, "attributes written, complete flag not"),
+    ("nightly", r"features/[^/]+/vib/done/c/", 3, "candidate's features unfinished"),
+    ("nightly", r"evaluations/[^/]+/zarr\.json$", 3, "candidate's evaluation unfinished"),
+    ("nightly", r"^zarr\.json$", 1, "everything complete, pointer not yet moved"),
+]
+
+
+@pytest.fixture(scope="module")
+def stages_ready(tmp_path_factory, demo_small):
+    """Workspaces at the start of each stage, and an uninterrupted reference run."""
+    X, y = demo_small
+    base = tmp_path_factory.mktemp("kill")
+    start = {}
+    url = str(base / "records.zarr")
+    ws = Workspace.open(url, create=True)
+    ws.add_records("vib", X[:120], chunk_rows=10)
+    ws.add_labels("vib", y[:120])
+    start["train"] = start["nightly"] = url
+    for stage, before in (("encode", "train"), ("pool", "encode"), ("evaluate", "pool")):
+        start[stage] = str(base / f"{stage}.zarr")
+        shutil.copytree(start[before], start[stage])
+        run_stage(start[stage], before)
+    reference = str(base / "reference.zarr")
+    shutil.copytree(url, reference)
+    ref = run_stage(reference, "nightly")
+    return base, start, reference, ref
+
+
+def _data(url: str, prefix: str) -> dict:
+    return {k: v for k, v in store_snapshot(Workspace.open(url)).items()
+            if k.startswith(prefix) and "/c/" in k}
+
+
+def test_sigkill_matrix_then_rerun_gives_the_reference(stages_ready, tmp_path):
+    base, start, reference, ref = stages_ready
+    dict_id = ref["dict_id"]
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join([os.path.dirname(__file__),
+                                                       os.environ.get("PYTHONPATH", "")]))
+    children = []
+    for i, (stage, pattern, nth, point) in enumerate(KILLS):
+        url = str(tmp_path / f"kill-{i}.zarr")
+        shutil.copytree(start[stage], url)
+        child = subprocess.Popen([sys.executable, "-c", _CHILD, url, stage, pattern, str(nth)],
+                                 env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+        children.append((url, stage, point, child))
+    ref_eval = Workspace.open(reference).evaluation(ref["run_id"])
+    for url, stage, point, child in children:
+        _, err = child.communicate(timeout=300)
+        assert child.returncode == -signal.SIGKILL, f"{stage} / {point}: {err.decode()[-2000:]}"
+        ws = Workspace.open(url)
+        # Right after the kill: nothing incomplete looks complete, the pointer is safe.
+        assert ws.promoted in (None, dict_id)
+        if ws.promoted is not None:
+            assert ws.output(pool.features_path(dict_id, "vib")).complete
+        if stage == "train":
+            assert not ws.has_dictionary(dict_id), point
+        if stage == "evaluate":
+            assert ws.evaluations() == [], point
+        # Rerun (the stale lease of the killed process is taken over), then compare.
+        result = run_stage(url, stage)
+        ws = Workspace.open(url)
+        assert result["dict_id"] == dict_id
+        produced = {"train": 1, "encode": 2}.get(stage, 3)
+        for prefix in ("dictionaries/", "codes/", "features/")[:produced]:
+            assert _data(url, prefix) == _data(reference, prefix), f"{stage} / {point}: {prefix}"
+        if stage in ("evaluate", "nightly"):
+            evaluations = ws.evaluations()
+            # Append-only: an evaluation finished before the kill stays beside the rerun's.
+            assert len(evaluations) == (2 if "pointer" in point else 1), point
+            assert all(e["metrics"] == ref_eval["metrics"] for e in evaluations)
+        if stage == "nightly":
+            assert ws.promoted == dict_id
+        assert not any(ws.lease_holder(p) for p in ("promoted", f"dictionaries/{dict_id}",
+                                                    encode.codes_path(dict_id, "vib"),
+                                                    pool.features_path(dict_id, "vib")))
