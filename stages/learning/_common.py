@@ -366,3 +366,70 @@ def check_resume(resume: dict | None, method: str, keys: tuple[str, ...]) -> dic
 def coded(X: np.ndarray, W: np.ndarray, coder: str, coder_options: dict) -> np.ndarray:
     """Dense codes of ``X`` (m, d) over ``W`` (k, d) with a named coder: shape (m, k)."""
     return np.asarray(code(X, W, coder, **coder_options).dense(), dtype=np.float64)
+
+
+def refresh_atoms(
+    W: np.ndarray,
+    window: np.ndarray,
+    batch: np.ndarray,
+    energy: np.ndarray,
+    dead_share: float,
+    duplicate_cos: float,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Replace atoms under-used in a window, or duplicated, by the worst-coded rows.
+
+    Parameters
+    ----------
+    W : ndarray of shape (k, d), unit rows
+    window : ndarray of shape (k,)
+        Rows that used each atom since the last refresh.
+    batch : ndarray of shape (m, d)
+        Rows of the current batch.
+    energy : ndarray of shape (m,)
+        Their residual energy with the atoms that coded them.
+    dead_share : float
+        Atoms used by fewer than ``dead_share * mean(window)`` rows are unused.
+    duplicate_cos : float
+
+    Returns
+    -------
+    atoms : ndarray of shape (k, d)
+    replaced : ndarray of shape (r,), int
+    """
+    dead = window < dead_share * window.mean()
+    return replace_atoms(W, dead, worst_rows(batch, energy, W.shape[0]), duplicate_cos)
+
+
+def default_forget(source: object, batch_size: int, n_passes: int) -> float:
+    """Forgetting that keeps about one pass of statistics over an in-memory source.
+
+    ``1 − 1/b`` for ``b`` batches per pass when the source is in memory and read in
+    several passes (so statistics gathered with older atoms fade out); 1 otherwise.
+    With one batch per pass this is 0: each pass starts from fresh statistics.
+    """
+    if isinstance(source, np.ndarray) and n_passes > 1:
+        per_pass = -(-source.shape[0] // batch_size)
+        return 1.0 - 1.0 / per_pass
+    return 1.0
+
+
+def check_forget(forget: float, allow_zero: bool = False) -> float:
+    """Validate a forgetting factor in (0, 1] (or [0, 1] when ``allow_zero``)."""
+    low_ok = forget >= 0 if allow_zero else forget > 0
+    if not (low_ok and forget <= 1):
+        raise InputError(problem("forget", "a factor in (0, 1]", repr(forget),
+                                 "Use 1 for a stationary archive, e.g. 0.99 for drift."))
+    return float(forget)
+
+
+def default_coder_options(coder: str, coder_options: dict | None) -> dict:
+    """The coder options a learner runs with: ``{"n_nonzero": 5}`` for OMP if none given."""
+    if coder_options is not None:
+        return dict(coder_options)
+    return {"n_nonzero": 5} if coder == "omp" else {}
+
+
+def too_few_rows(n_atoms: int) -> None:
+    """Raise the error for a training sample smaller than the dictionary."""
+    raise InputError(problem("training rows", f"at least n_atoms = {n_atoms} rows", "fewer",
+                             "Train on a larger sample or ask for fewer atoms."))

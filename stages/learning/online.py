@@ -38,7 +38,6 @@ from typing import Iterable
 
 import numpy as np
 
-from ..errors import InputError, problem
 from ._common import (
     Checkpoint,
     CheckpointClock,
@@ -48,26 +47,22 @@ from ._common import (
     check_resume,
     coded,
     coherence,
+    check_forget,
+    default_coder_options,
+    default_forget,
     generator_from_json,
     generator_to_json,
     iter_batches,
-    replace_atoms,
+    refresh_atoms,
     residual_energy,
+    too_few_rows,
     unit_rows,
-    worst_rows,
 )
 
-__all__ = ["online", "default_coder_options"]
+__all__ = ["online"]
 
 _STATE_KEYS = ("atoms", "A", "B", "usage", "window", "objective", "batches_seen", "t",
                "n_replaced", "rng")
-
-
-def default_coder_options(coder: str, coder_options: dict | None) -> dict:
-    """The coder options a learner runs with: ``{"n_nonzero": 5}`` for OMP if none given."""
-    if coder_options is not None:
-        return dict(coder_options)
-    return {"n_nonzero": 5} if coder == "omp" else {}
 
 
 def online(
@@ -107,11 +102,10 @@ def online(
         Rows per mini-batch (in-memory source only).
     n_passes : int
         Passes over an in-memory source.
-    forget : float in (0, 1], optional
+    forget : float in [0, 1], optional
         Constant factor applied to the accumulated statistics before each batch.
-        Default: for an in-memory source read in several passes, ``1 − 1/b`` with
-        ``b`` batches per pass (a memory of about one pass, so codes from earlier
-        passes, made with older atoms, fade out); otherwise 1.
+        Default: :func:`._common.default_forget` (about one pass of memory for an
+        in-memory source read in several passes, else 1). 0 keeps only the batch.
     warmup : float ≥ 0
         Exponent ``ρ`` of the schedule ``(1 − 1/t)^ρ``; 0 keeps all statistics.
     n_sweeps : int
@@ -138,10 +132,8 @@ def online(
         ``method="online"``; ``diagnostics["objective"]`` holds, per batch, the mean
         of ``½‖x − Wᵀz‖²`` over the batch coded with the atoms before the update.
     """
-    forget = _default_forget(source, batch_size, n_passes) if forget is None else forget
-    if not 0 < forget <= 1:
-        raise InputError(problem("forget", "a factor in (0, 1]", repr(forget),
-                                 "Use 1 for a stationary archive, e.g. 0.99 for drift."))
+    forget = default_forget(source, batch_size, n_passes) if forget is None else forget
+    forget = check_forget(forget, allow_zero=True)
     coder_options = default_coder_options(coder, coder_options)
     clock = CheckpointClock(checkpoint, checkpoint_every)
     resume = check_resume(resume, "online", _STATE_KEYS)
@@ -164,7 +156,7 @@ def online(
         # In memory: start from distinct rows drawn over the whole array.
         rows = as_rows(source)
         if rows.shape[0] < n_atoms:
-            _too_few(n_atoms)
+            too_few_rows(n_atoms)
         W = unit_rows(rows[rng.choice(rows.shape[0], n_atoms, replace=False)])
 
     def state() -> dict:
@@ -203,8 +195,7 @@ def online(
         window += used
         W = bcd_sweep(W, A, B, n_sweeps)
         if replace_every and t % replace_every == 0:
-            dead = window < dead_share * window.mean()
-            W, gone = replace_atoms(W, dead, worst_rows(batch, energy, n_atoms), duplicate_cos)
+            W, gone = refresh_atoms(W, window, batch, energy, dead_share, duplicate_cos)
             A[gone, :] = 0.0
             A[:, gone] = 0.0
             B[gone] = 0.0
@@ -212,7 +203,7 @@ def online(
             window[:] = 0
         clock.tick(batches_seen, state)
     if W is None or A is None:
-        _too_few(n_atoms)
+        too_few_rows(n_atoms)
     return LearnedDictionary(
         atoms=W,
         method="online",
@@ -231,15 +222,3 @@ def online(
             "batches_seen": batches_seen,
         },
     )
-
-
-def _default_forget(source: object, batch_size: int, n_passes: int) -> float:
-    if isinstance(source, np.ndarray) and n_passes > 1:
-        per_pass = -(-source.shape[0] // batch_size)
-        return 1.0 - 1.0 / max(per_pass, 2)
-    return 1.0
-
-
-def _too_few(n_atoms: int) -> None:
-    raise InputError(problem("training rows", f"at least n_atoms = {n_atoms} rows", "fewer",
-                             "Train on a larger sample or ask for fewer atoms."))
