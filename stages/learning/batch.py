@@ -118,7 +118,7 @@ def batch_update(
     stats: dict,
     *,
     n_sweeps: int = 5,
-    dead_share: float = 0.02,
+    dead_share: float = 0.15,
     duplicate_cos: float = 0.98,
 ) -> np.ndarray:
     """New atoms from the combined statistics of one pass.
@@ -163,7 +163,7 @@ def batch(
     n_passes: int = 10,
     chunk_size: int = 4096,
     n_sweeps: int = 5,
-    dead_share: float = 0.02,
+    dead_share: float = 0.15,
     duplicate_cos: float = 0.98,
     seed: int = 0,
     init: np.ndarray | None = None,

@@ -71,7 +71,7 @@ def kmeans(
     n_passes: int = 1,
     forget: float | None = None,
     replace_every: int = 10,
-    dead_share: float = 0.02,
+    dead_share: float = 0.15,
     duplicate_cos: float = 0.98,
     seed: int = 0,
     init: np.ndarray | None = None,

@@ -77,7 +77,7 @@ def online(
     warmup: float = 1.0,
     n_sweeps: int = 1,
     replace_every: int = 10,
-    dead_share: float = 0.02,
+    dead_share: float = 0.15,
     duplicate_cos: float = 0.98,
     seed: int = 0,
     init: np.ndarray | None = None,

@@ -75,7 +75,7 @@ def averaged_sgd(
         ``coder`` (str, "omp"), ``coder_options`` (dict), ``batch_size`` (256),
         ``n_passes`` (1), ``step`` (1.0, in units of 1/L), ``step_halflife``
         (batches, 10), ``average_decay`` (3.0, averaged only), ``replace_every``
-        (10), ``dead_share`` (0.02), ``duplicate_cos`` (0.98), ``seed`` (0),
+        (10), ``dead_share`` (0.15), ``duplicate_cos`` (0.98), ``seed`` (0),
         ``init`` ((n_atoms, d) array), ``checkpoint``, ``checkpoint_every`` (10),
         ``resume``.
 
@@ -100,7 +100,7 @@ def _run(
     step_halflife: float = 10.0,
     average_decay: float = 3.0,
     replace_every: int = 10,
-    dead_share: float = 0.02,
+    dead_share: float = 0.15,
     duplicate_cos: float = 0.98,
     seed: int = 0,
     init: np.ndarray | None = None,
