@@ -265,9 +265,10 @@ class Normaliser:
             cov = centred.T @ centred / max(centred.shape[0] - 1, 1)
             lam, U = np.linalg.eigh(cov)
             lam = np.clip(lam, 0.0, None)
-            if self.whiten_eps == 0 and lam.min() <= 0:
+            # Rank test relative to the largest eigenvalue (rounding leaves ~1e-16).
+            if self.whiten_eps == 0 and lam.min() <= 1e-12 * max(lam.max(), 1e-300):
                 raise InputError(problem("whitening", "a full-rank covariance when whiten_eps = 0",
-                                         f"rank {int((lam > 0).sum())} of {lam.size}",
+                                         f"rank {int((lam > 1e-12 * lam.max()).sum())} of {lam.size}",
                                          "Set whiten_eps > 0 (per-patch mean removal "
                                          "always removes one direction)."))
             whitening = (U / np.sqrt(lam + self.whiten_eps)) @ U.T
