@@ -44,7 +44,7 @@ def _assert_plain(state: dict) -> None:
 
 
 CASES = [
-    ("online", {"coder_options": {"n_nonzero": 3}, "replace_every": 2}),
+    ("online", {"coder_options": {"n_nonzero": 3}, "replace_every": 2, "batch_size": 50}),
     ("sgd", {"coder_options": {"n_nonzero": 3}, "replace_every": 2}),
     ("averaged-sgd", {"coder_options": {"n_nonzero": 3}}),
     ("kmeans", {"replace_every": 2}),

@@ -76,6 +76,8 @@ METHODS: dict[str, Callable[..., LearnedDictionary]] = {
 
 #: Most rows coded to measure the training error.
 _PROBE_MAX = 10_000
+#: Rows coded at once when measuring errors.
+_PROBE_PIECE = 2048
 #: Prefix of the entries :func:`learn` adds to a learner's checkpoint state.
 _OWN = "learn."
 
@@ -277,7 +279,11 @@ def _relative_error(
     """
     if X.shape[0] == 0:
         return None, []
-    Z = coded(X, W, coder, coder_options)
+    err, usage = 0.0, np.zeros(W.shape[0], dtype=np.int64)
+    for start in range(0, X.shape[0], _PROBE_PIECE):  # pieces bound the coder's memory
+        piece = X[start : start + _PROBE_PIECE]
+        Z = coded(piece, W, coder, coder_options)
+        err += float(residual_energy(piece, Z, W).sum())
+        usage += (Z != 0).sum(axis=0)
     total = float(np.einsum("ij,ij->", X, X))
-    err = float(residual_energy(X, Z, W).sum())
-    return (err / total if total > 0 else 0.0), (Z != 0).sum(axis=0).tolist()
+    return (err / total if total > 0 else 0.0), usage.tolist()

@@ -147,15 +147,16 @@ def iter_batches(
     n_passes: int,
     seed: int,
     skip: int = 0,
-) -> Iterator[np.ndarray]:
+) -> Iterator[tuple[np.ndarray, bool]]:
     """Yield mini-batches (rows, d) from an array or from an iterable of batches.
 
     An in-memory array is shuffled once per pass with a generator seeded by ``seed``
     (independent of the learner's own generator) and cut into ``batch_size`` rows, so
     the sequence is a pure function of ``(n_rows, batch_size, n_passes, seed)`` and the
     first ``skip`` batches can be dropped without being built: that is how an
-    in-memory run resumes. An iterable is consumed as given (the caller streams it,
-    e.g. from Zarr) and both ``n_passes`` and ``skip`` are ignored: on resume the
+    in-memory run resumes. An iterable is consumed once, as given (the caller streams
+    it, e.g. Zarr chunks), each of its batches cut into pieces of at most
+    ``batch_size`` rows in order; ``n_passes`` and ``skip`` are ignored: on resume the
     *caller* starts the stream after the batches already seen.
 
     Parameters
@@ -169,10 +170,20 @@ def iter_batches(
 
     Yields
     ------
-    ndarray of shape (m, d)
+    rows : ndarray of shape (≤ batch_size, d)
+    closes : bool
+        True on the last piece of a source batch: the learner counts source batches
+        (``batches_seen``) and checkpoints only there.
     """
+    if int(batch_size) < 1:
+        raise InputError(problem("batch_size", "a positive integer", repr(batch_size),
+                                 "Use e.g. 256 or 1024 rows."))
     if not isinstance(source, np.ndarray):
-        yield from source
+        for block in source:
+            block = as_rows(block)
+            starts = range(0, block.shape[0], batch_size)
+            for i, start in enumerate(starts):
+                yield block[start : start + batch_size], i == len(starts) - 1
         return
     rows = as_rows(source)
     rng = np.random.default_rng(seed)
@@ -182,7 +193,7 @@ def iter_batches(
         for b in range(per_pass):
             if p * per_pass + b < skip:
                 continue
-            yield rows[np.sort(order[b * batch_size : (b + 1) * batch_size])]
+            yield rows[np.sort(order[b * batch_size : (b + 1) * batch_size])], True
 
 
 def residual_energy(X: np.ndarray, Z: np.ndarray, W: np.ndarray) -> np.ndarray:

@@ -86,7 +86,7 @@ def kmeans(
     source : ndarray of shape (n_rows, d), or iterable of ndarrays of shape (m, d)
     n_atoms : int
     batch_size : int
-        Rows per mini-batch (in-memory source).
+        Rows per mini-batch (larger stream batches are cut to this size).
     n_passes : int
         Passes over an in-memory source.
     forget : float in [0, 1], optional
@@ -137,9 +137,9 @@ def kmeans(
                 "n_replaced": n_replaced}
 
     pending: list[np.ndarray] = []
-    for batch in iter_batches(source, batch_size, n_passes, seed, skip=batches_seen):
+    for batch, closes in iter_batches(source, batch_size, n_passes, seed, skip=batches_seen):
         batch = as_rows(batch, width=None if W is None else W.shape[1])
-        batches_seen += 1
+        batches_seen += int(closes)
         if W is None:
             pending.append(batch)
             pool = np.concatenate(pending)
@@ -168,7 +168,8 @@ def kmeans(
             S[gone], counts[gone] = 0.0, 0.0
             n_replaced += int(gone.size)
             window[:] = 0
-        clock.tick(batches_seen, state)
+        if closes:
+            clock.tick(batches_seen, state)
     if W is None or S is None:
         too_few_rows(n_atoms)
     return LearnedDictionary(

@@ -99,7 +99,7 @@ def online(
     coder_options : dict, optional
         Its options; default ``{"n_nonzero": 5}`` for OMP.
     batch_size : int
-        Rows per mini-batch (in-memory source only).
+        Rows per mini-batch (larger stream batches are cut to this size).
     n_passes : int
         Passes over an in-memory source.
     forget : float in [0, 1], optional
@@ -166,9 +166,9 @@ def online(
                 "n_replaced": n_replaced, "rng": generator_to_json(rng)}
 
     pending: list[np.ndarray] = []
-    for batch in iter_batches(source, batch_size, n_passes, seed, skip=batches_seen):
+    for batch, closes in iter_batches(source, batch_size, n_passes, seed, skip=batches_seen):
         batch = as_rows(batch, width=None if W is None else W.shape[1])
-        batches_seen += 1
+        batches_seen += int(closes)
         if W is None:
             # Streamed, no init: wait for n_atoms rows, then start from them.
             pending.append(batch)
@@ -201,7 +201,8 @@ def online(
             B[gone] = 0.0
             n_replaced += int(gone.size)
             window[:] = 0
-        clock.tick(batches_seen, state)
+        if closes:
+            clock.tick(batches_seen, state)
     if W is None or A is None:
         too_few_rows(n_atoms)
     return LearnedDictionary(

@@ -81,15 +81,16 @@ def pca(
         return {"method": "pca", "n": n, "sum": total.copy(), "scatter": scatter.copy(),
                 "batches_seen": batches_seen}
 
-    for rows in iter_batches(source, batch_size, 1, seed, skip=batches_seen):
+    for rows, closes in iter_batches(source, batch_size, 1, seed, skip=batches_seen):
         X = as_rows(rows, width=None if total is None else total.shape[0])
         if total is None:
             total, scatter = np.zeros(X.shape[1]), np.zeros((X.shape[1], X.shape[1]))
         n += X.shape[0]
         total += X.sum(axis=0)
         scatter += X.T @ X
-        batches_seen += 1
-        clock.tick(batches_seen, state)
+        batches_seen += int(closes)
+        if closes:
+            clock.tick(batches_seen, state)
     if total is None:
         raise InputError(problem("training rows", "at least one row", "none", "Check the source."))
     d = total.shape[0]

@@ -142,9 +142,9 @@ def _run(
                 "n_replaced": n_replaced, "rng": generator_to_json(rng)}
 
     pending: list[np.ndarray] = []
-    for batch in iter_batches(source, batch_size, n_passes, seed, skip=batches_seen):
+    for batch, closes in iter_batches(source, batch_size, n_passes, seed, skip=batches_seen):
         batch = as_rows(batch, width=None if W is None else W.shape[1])
-        batches_seen += 1
+        batches_seen += int(closes)
         if W is None:
             pending.append(batch)
             pool = np.concatenate(pending)
@@ -174,7 +174,8 @@ def _run(
             window[:] = 0
         omega = (1.0 + average_decay) / (t + average_decay)
         avg = (1.0 - omega) * avg + omega * W
-        clock.tick(batches_seen, state)
+        if closes:
+            clock.tick(batches_seen, state)
     if W is None or usage is None:
         too_few_rows(n_atoms)
     atoms = unit_rows(avg) if averaged else W

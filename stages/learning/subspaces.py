@@ -113,9 +113,9 @@ def subspaces(
                 "n_replaced": n_replaced, "rng": generator_to_json(rng)}
 
     pending: list[np.ndarray] = []
-    for batch in iter_batches(source, batch_size, n_passes, seed, skip=batches_seen):
+    for batch, closes in iter_batches(source, batch_size, n_passes, seed, skip=batches_seen):
         batch = as_rows(batch, width=None if U is None else U.shape[2])
-        batches_seen += 1
+        batches_seen += int(closes)
         if U is None:
             pending.append(batch)
             pool = np.concatenate(pending)
@@ -159,7 +159,8 @@ def subspaces(
                     C[empty[:n_new]] = 0.0
                     n_replaced += n_new
             window[:] = 0
-        clock.tick(batches_seen, state)
+        if closes:
+            clock.tick(batches_seen, state)
     if U is None or C is None:
         too_few_rows(n_atoms)
     atoms = _signed(U.reshape(n_atoms, -1))
