@@ -75,3 +75,12 @@ def test_batch_objective_falls_and_unused_atoms_are_replaced():
     assert trace[-1] < 0.8 * trace[0]
     assert learned.diagnostics["replaced"] >= 5
     assert learned.diagnostics["coherence"] < 0.98
+
+
+def test_a_re_iterable_stream_gives_the_in_memory_result():
+    X, W0 = _data(3)
+    chunks = [X[i : i + 300] for i in range(0, 1800, 300)]
+    opts = dict(holdout=0, init=W0, n_passes=3, coder_options=OMP3)
+    streamed = learn(chunks, 20, "batch", **opts)
+    in_memory = learn(X, 20, "batch", chunk_size=300, **opts)
+    np.testing.assert_array_equal(streamed.atoms, in_memory.atoms)

@@ -79,5 +79,5 @@ def test_entry_point_refusals():
         learn(bad, 8, "online")
     with pytest.raises(InputError):
         learn(X, 200, "online", holdout=0)
-    with pytest.raises(InputError):
-        learn(iter([X]), 8, "batch")  # one-shot stream cannot be read once per pass
+    with pytest.raises(InputError):  # a one-shot stream cannot be read once per pass
+        learn(iter([X[:40], X[40:70], X[70:]]), 8, "batch", holdout=0)

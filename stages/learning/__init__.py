@@ -237,6 +237,12 @@ class _Chain:
             self.used = True
             yield self.first
             yield from self.stream
+        elif iter(self.source) is self.source:
+            raise InputError(problem("training stream", "a source that can be read again "
+                                     "(this method reads it more than once)",
+                                     "a one-shot iterator",
+                                     "Pass a list of batches or an object whose __iter__ "
+                                     "re-reads the chunks."))
         else:
             yield from self.source
 

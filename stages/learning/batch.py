@@ -42,7 +42,6 @@ from ._common import (
     replace_atoms,
     too_few_rows,
     unit_rows,
-    worst_rows,
 )
 
 __all__ = ["batch", "batch_statistics", "combine_statistics", "batch_update"]
