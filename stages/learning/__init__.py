@@ -36,7 +36,8 @@ and ``checkpoint`` / ``checkpoint_every`` / ``resume`` (see :func:`learn`).
 from __future__ import annotations
 
 import json
-from typing import Any, Callable, Iterable, Iterator
+from collections.abc import Iterator
+from typing import Any, Callable, Iterable
 
 import numpy as np
 
@@ -237,7 +238,7 @@ class _Chain:
             self.used = True
             yield self.first
             yield from self.stream
-        elif iter(self.source) is self.source:
+        elif isinstance(self.source, Iterator):  # generators, iter(list): one pass only
             raise InputError(problem("training stream", "a source that can be read again "
                                      "(this method reads it more than once)",
                                      "a one-shot iterator",

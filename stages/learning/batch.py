@@ -24,6 +24,7 @@ by the caller: each pass re-reads the whole source.
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from typing import Iterable
 
 import numpy as np
@@ -201,7 +202,7 @@ def batch(
         ``method="batch"``; ``diagnostics["objective"]`` holds, per pass, the mean of
         ``½‖x − Wᵀz‖²`` over all rows coded with the atoms before that pass's update.
     """
-    if not isinstance(source, np.ndarray) and iter(source) is source:
+    if isinstance(source, Iterator):  # generators, iter(list): readable once only
         raise InputError(problem("training stream", "an array or a re-iterable source "
                                  "(read once per pass)", "a one-shot iterator",
                                  "Pass a list of batches or an object whose __iter__ "
