@@ -70,6 +70,9 @@ import numpy as np
 from ..errors import InputError, problem
 from ._common import SparseCodes, check_problem, gram
 from .cosamp import cosamp, cosamp_width
+from .fista import fista
+from .ista import ista
+from .lars import lars, lasso_width
 from .mp import mp, mp_width
 from .omp import omp, omp_width
 from .ormp import ormp, ormp_width
@@ -79,17 +82,23 @@ __all__ = ["code", "code_width", "METHODS", "SparseCodes", "gram"]
 #: Coders by their trade name. Each takes validated ``(X, atoms, **options)``.
 METHODS: dict[str, Callable[..., SparseCodes]] = {
     "mp": mp,
-    "cosamp": cosamp,
     "omp": omp,
     "ormp": ormp,
+    "cosamp": cosamp,
+    "lars": lars,
+    "ista": ista,
+    "fista": fista,
 }
 
 #: Slots per row each coder returns, from ``(n_atoms, **options)``.
 _WIDTHS: dict[str, Callable[..., int]] = {
     "mp": mp_width,
-    "cosamp": cosamp_width,
     "omp": omp_width,
     "ormp": ormp_width,
+    "cosamp": cosamp_width,
+    "lars": lasso_width,
+    "ista": lasso_width,
+    "fista": lasso_width,
 }
 
 

@@ -277,29 +277,55 @@ def pack_dense(dense: np.ndarray, width: int) -> SparseCodes:
 
 @numba.njit(cache=True)
 def _pack_rows(dense, index, value, count):  # pragma: no cover - compiled
-    n, k = dense.shape
+    for i in range(dense.shape[0]):
+        pack_row(dense[i], i, index, value, count)
+
+
+@numba.njit(cache=True)
+def pack_row(z, i, index, value, count):  # pragma: no cover - compiled
+    """Write the nonzeros of ``z`` (k,) into row ``i`` of the layout, atom order.
+
+    With more nonzeros than slots, keep the largest magnitudes (ties: lower atom).
+    """
+    k = z.shape[0]
     width = index.shape[1]
-    for i in range(n):
-        c = 0
+    c = 0
+    for j in range(k):
+        if z[j] != 0:
+            c += 1
+    cut = -1.0
+    n_at_cut = 0
+    if c > width:
+        if width == 0:
+            count[i] = 0
+            return
+        mags = np.sort(np.abs(z))[::-1]
+        cut = mags[width - 1]  # keep > cut, then == cut by atom order
+        n_above = 0
         for j in range(k):
-            if dense[i, j] != 0:
-                c += 1
+            if abs(z[j]) > cut:
+                n_above += 1
+        n_at_cut = width - n_above
+    s = 0
+    for j in range(k):
+        v = z[j]
+        if v == 0:
+            continue
         if c > width:
-            # Keep the `width` largest magnitudes: find the cut value by sorting.
-            mags = np.abs(dense[i])
-            order = np.argsort(-mags, kind="mergesort")
-            keep = np.zeros(k, dtype=np.bool_)
-            for t in range(width):
-                keep[order[t]] = True
-        else:
-            keep = dense[i] != 0
-        s = 0
-        for j in range(k):
-            if keep[j] and dense[i, j] != 0:
-                index[i, s] = j
-                value[i, s] = dense[i, j]
-                s += 1
-        count[i] = s
+            a = abs(v)
+            if a < cut:
+                continue
+            if a == cut:
+                if n_at_cut == 0:
+                    continue
+                n_at_cut -= 1
+        index[i, s] = j
+        value[i, s] = v
+        s += 1
+    for t in range(s, width):
+        index[i, t] = -1
+        value[i, t] = 0
+    count[i] = s
 
 
 @numba.njit(cache=True, inline="always")
@@ -371,19 +397,27 @@ def orthogonal_pursuit(C, G, xnorm, tol, order_recursive, index, value, count): 
         s = 0
         while s < S and err > stop:
             best = -1
-            score = 0.0
-            for j in range(k):
-                a = alpha[j]
-                if order_recursive:
+            if order_recursive:
+                # argmax a_j² / den_j, compared as num·best_den > best_num·den_j so
+                # that no division runs per atom.
+                bnum = 0.0
+                bden = 1.0
+                for j in range(k):
                     den = diag[j] - q[j]
                     if den <= 1e3 * eps * diag[j]:
                         continue
-                    sc = a * a / den
-                else:
-                    sc = abs(a)
-                if sc > score:
-                    score = sc
-                    best = j
+                    num = alpha[j] * alpha[j]
+                    if num * bden > bnum * den:
+                        bnum = num
+                        bden = den
+                        best = j
+            else:
+                score = 0.0
+                for j in range(k):
+                    sc = abs(alpha[j])
+                    if sc > score:
+                        score = sc
+                        best = j
             if best < 0:
                 break
             j = best
