@@ -46,7 +46,9 @@ Methods and their options
     ``max_iter``, ``gap_tol`` (relative duality gap per row), ``max_nonzero``, ``gram``;
     ``fista`` adds momentum with adaptive restart.
 ``threshold``
-    Soft threshold of ``W x``: ``alpha`` (offset), ``split_sign``, ``positive``.
+    Soft threshold of ``W x``: ``alpha`` (offset), ``split_sign`` (outputs
+    ``max(0, c − alpha)`` as atom ``j`` and ``max(0, −c − alpha)`` as atom ``k + j``:
+    ``n_atoms`` of the codes is then ``2k``, the width stays ``k``).
 ``triangle``
     k-means "triangle" activation: no options.
 ``hard``
@@ -69,13 +71,17 @@ import numpy as np
 
 from ..errors import InputError, problem
 from ._common import SparseCodes, check_problem, gram
+from .block_omp import block_omp, block_omp_width
 from .cosamp import cosamp, cosamp_width
 from .fista import fista
 from .ista import ista
 from .lars import lars, lasso_width
 from .mp import mp, mp_width
 from .omp import omp, omp_width
+from .hard import hard, hard_width
 from .ormp import ormp, ormp_width
+from .threshold import threshold, threshold_width
+from .triangle import triangle, triangle_width
 
 __all__ = ["code", "code_width", "METHODS", "SparseCodes", "gram"]
 
@@ -88,6 +94,10 @@ METHODS: dict[str, Callable[..., SparseCodes]] = {
     "lars": lars,
     "ista": ista,
     "fista": fista,
+    "threshold": threshold,
+    "triangle": triangle,
+    "hard": hard,
+    "block-omp": block_omp,
 }
 
 #: Slots per row each coder returns, from ``(n_atoms, **options)``.
@@ -99,6 +109,10 @@ _WIDTHS: dict[str, Callable[..., int]] = {
     "lars": lasso_width,
     "ista": lasso_width,
     "fista": lasso_width,
+    "threshold": threshold_width,
+    "triangle": triangle_width,
+    "hard": hard_width,
+    "block-omp": block_omp_width,
 }
 
 

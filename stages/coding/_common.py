@@ -354,6 +354,45 @@ def greedy_options(n_atoms: int, n_nonzero: object, tol: object) -> tuple[int, f
 
 
 @numba.njit(cache=True)
+def append_atom(j, G, diag, U, Lm, s, alpha):  # pragma: no cover - compiled
+    """Grow the progressive Cholesky state of one row by atom ``j``.
+
+    State: ``Lm[:s, :s]`` the Cholesky factor of the active atoms' Gram block,
+    ``U[:s] = L⁻¹ G[active, :]`` and ``alpha`` (k,) the residual correlations. Writes
+    row ``s`` of ``Lm`` and ``U``, updates ``alpha`` and returns ``v_j`` (the new entry
+    of ``L⁻¹ c``; the residual energy drops by ``v_j²``). Returns NaN and changes
+    nothing when atom ``j`` lies (numerically) in the span of the active atoms.
+    """
+    k = alpha.shape[0]
+    eps = np.finfo(alpha.dtype).eps
+    ww = 0.0
+    for t in range(s):
+        ww += U[t, j] * U[t, j]
+    l2 = diag[j] - ww
+    if l2 <= 1e3 * eps * diag[j]:
+        return np.nan
+    for t in range(s):
+        Lm[s, t] = U[t, j]
+    el = np.sqrt(l2)
+    for jj in range(k):
+        U[s, jj] = G[j, jj]
+    for t in range(s):
+        wt = Lm[s, t]
+        if wt != 0:
+            for jj in range(k):
+                U[s, jj] -= wt * U[t, jj]
+    inv = 1.0 / el
+    vj = alpha[j] * inv
+    for jj in range(k):
+        u = U[s, jj] * inv
+        U[s, jj] = u
+        alpha[jj] -= vj * u
+    alpha[j] = 0.0  # exactly orthogonal to the residual now
+    Lm[s, s] = el
+    return vj
+
+
+@numba.njit(cache=True)
 def orthogonal_pursuit(C, G, xnorm, tol, order_recursive, index, value, count):  # pragma: no cover
     """Per-row OMP / ORMP in the correlation domain with a progressive Cholesky factor.
 
@@ -421,33 +460,12 @@ def orthogonal_pursuit(C, G, xnorm, tol, order_recursive, index, value, count): 
             if best < 0:
                 break
             j = best
-            ww = 0.0
-            for t in range(s):
-                wt = U[t, j]
-                Lm[s, t] = wt
-                ww += wt * wt
-            l2 = diag[j] - ww
-            if l2 <= 1e3 * eps * diag[j]:
-                break  # the best atom is (numerically) in the span: nothing left to add
-            el = np.sqrt(l2)
-            for jj in range(k):
-                U[s, jj] = G[j, jj]
-            for t in range(s):
-                wt = Lm[s, t]
-                if wt != 0:
-                    for jj in range(k):
-                        U[s, jj] -= wt * U[t, jj]
-            inv = 1.0 / el
-            vj = alpha[j] * inv
-            for jj in range(k):
-                u = U[s, jj] * inv
-                U[s, jj] = u
-                alpha[jj] -= vj * u
+            vj = append_atom(j, G, diag, U, Lm, s, alpha)
+            if vj != vj:  # NaN: the best atom is (numerically) in the span: stop here
+                break
             if order_recursive:
                 for jj in range(k):
                     q[jj] += U[s, jj] * U[s, jj]
-            alpha[j] = 0.0  # exactly orthogonal to the residual now
-            Lm[s, s] = el
             v[s] = vj
             err -= vj * vj
             index[i, s] = j
