@@ -79,11 +79,22 @@ from .lars import lars, lasso_width
 from .mp import mp, mp_width
 from .omp import omp, omp_width
 from .hard import hard, hard_width
+from .learned import LearnedEncoder, fit_learned_encoder, learned, learned_width
 from .ormp import ormp, ormp_width
+from .sparsity import lambda_for_sparsity
 from .threshold import threshold, threshold_width
 from .triangle import triangle, triangle_width
 
-__all__ = ["code", "code_width", "METHODS", "SparseCodes", "gram"]
+__all__ = [
+    "code",
+    "code_width",
+    "METHODS",
+    "SparseCodes",
+    "gram",
+    "LearnedEncoder",
+    "fit_learned_encoder",
+    "lambda_for_sparsity",
+]
 
 #: Coders by their trade name. Each takes validated ``(X, atoms, **options)``.
 METHODS: dict[str, Callable[..., SparseCodes]] = {
@@ -98,6 +109,7 @@ METHODS: dict[str, Callable[..., SparseCodes]] = {
     "triangle": triangle,
     "hard": hard,
     "block-omp": block_omp,
+    "learned": learned,
 }
 
 #: Slots per row each coder returns, from ``(n_atoms, **options)``.
@@ -113,6 +125,7 @@ _WIDTHS: dict[str, Callable[..., int]] = {
     "triangle": triangle_width,
     "hard": hard_width,
     "block-omp": block_omp_width,
+    "learned": learned_width,
 }
 
 

@@ -527,3 +527,41 @@ def solve_spd_dropping(A, b, out):  # pragma: no cover - compiled
             acc -= A[r, i] * out[r]
         out[i] = acc / A[i, i]
     return kept
+
+
+#: Rows per BLAS call in :func:`correlations`; a multiple of 48 so that every row falls
+#: in a full micro-tile of the usual GEMM kernels (tile heights 4, 8, 12, 16, 24).
+_BLOCK_ROWS = 384
+
+
+def correlations(X: np.ndarray, M: np.ndarray) -> np.ndarray:
+    """``X @ M`` computed so that each row's bytes do not depend on the other rows.
+
+    BLAS libraries choose kernels and tile edges from the shape and memory alignment
+    of the whole call (OpenBLAS was seen to give other last bits for 1–3-row calls and
+    for rows in a tile edge), so a chunk coded in two pieces could differ in the last
+    bit from one call. Here every call has the same shape (``_BLOCK_ROWS`` rows, the
+    last block zero-padded) and reads an aligned copy, so a row's result depends on
+    that row alone. The extra cost is one copy of ``X``.
+
+    Parameters
+    ----------
+    X : ndarray of shape (n_rows, d)
+    M : ndarray of shape (d, m), same dtype
+
+    Returns
+    -------
+    ndarray of shape (n_rows, m)
+    """
+    n, d = X.shape
+    out = np.empty((n, M.shape[1]), dtype=X.dtype)
+    buf = np.zeros((_BLOCK_ROWS, d), dtype=X.dtype)
+    for start in range(0, n, _BLOCK_ROWS):  # loop over blocks of rows, not rows
+        stop = min(n, start + _BLOCK_ROWS)
+        buf[: stop - start] = X[start:stop]
+        if stop - start == _BLOCK_ROWS:
+            np.matmul(buf, M, out=out[start:stop])
+        else:
+            buf[stop - start:] = 0
+            out[start:stop] = (buf @ M)[: stop - start]
+    return out

@@ -15,7 +15,7 @@ import numba
 import numpy as np
 
 from ..errors import InputError, problem
-from ._common import SparseCodes, append_atom, nonnegative_float, positive_int
+from ._common import SparseCodes, append_atom, correlations, nonnegative_float, positive_int
 
 __all__ = ["block_omp", "block_omp_width"]
 
@@ -56,7 +56,7 @@ def block_omp(
     width = block_omp_width(k, group_size=group_size, n_groups=n_groups)
     tol = 0.0 if tol is None else nonnegative_float("tol", tol)
     G = atoms @ atoms.T if gram is None else np.ascontiguousarray(gram, dtype=X.dtype)
-    C = X @ atoms.T
+    C = correlations(X, atoms.T)
     xnorm = np.einsum("ij,ij->i", X, X)
     n = X.shape[0]
     index = np.full((n, width), -1, dtype=np.int32)

@@ -14,7 +14,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from ._common import SparseCodes, greedy_options, positive_int, solve_spd_dropping
+from ._common import SparseCodes, correlations, greedy_options, positive_int, solve_spd_dropping
 
 __all__ = ["cosamp", "cosamp_width"]
 
@@ -52,7 +52,7 @@ def cosamp(
     S, tol = greedy_options(k, n_nonzero, tol)
     max_iter = positive_int("max_iter", max_iter)
     G = atoms @ atoms.T if gram is None else np.ascontiguousarray(gram, dtype=X.dtype)
-    C = X @ atoms.T
+    C = correlations(X, atoms.T)
     xnorm = np.einsum("ij,ij->i", X, X)
     n = X.shape[0]
     index = np.full((n, S), -1, dtype=np.int32)

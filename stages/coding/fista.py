@@ -18,8 +18,10 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from ._common import (SparseCodes, as_dense_init, lipschitz, nonnegative_float,
-                      pack_row, positive_int, soft)
+from ._common import (
+    SparseCodes, as_dense_init, correlations, lipschitz, nonnegative_float, pack_row,
+    positive_int, soft,
+)
 from .lars import lasso_width
 
 __all__ = ["fista", "proximal_gradient"]
@@ -80,7 +82,7 @@ def proximal_gradient(X, atoms, *, lam, positive, init, max_iter, gap_tol, max_n
     width = lasso_width(k, max_nonzero=max_nonzero)
     Z0 = as_dense_init(init, n, k, X.dtype)
     G = atoms @ atoms.T if gram is None else np.ascontiguousarray(gram, dtype=X.dtype)
-    C = X @ atoms.T
+    C = correlations(X, atoms.T)
     xnorm = np.einsum("ij,ij->i", X, X)
     index = np.full((n, width), -1, dtype=np.int32)
     value = np.zeros((n, width), dtype=X.dtype)

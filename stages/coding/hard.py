@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ._common import SparseCodes
+from ._common import SparseCodes, correlations
 
 __all__ = ["hard", "hard_width"]
 
@@ -27,7 +27,7 @@ def hard(X: np.ndarray, atoms: np.ndarray) -> SparseCodes:
         Width 1: the nearest atom, value 1.
     """
     wnorm = np.einsum("ij,ij->i", atoms, atoms)
-    score = X @ atoms.T
+    score = correlations(X, atoms.T)
     score *= -2
     score += wnorm
     nearest = np.argmin(score, axis=1).astype(np.int32)

@@ -21,7 +21,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from ._common import SparseCodes, nonnegative_float, positive_int
+from ._common import SparseCodes, correlations, nonnegative_float, positive_int
 
 __all__ = ["lars", "lasso_width"]
 
@@ -59,7 +59,7 @@ def lars(
     lam = nonnegative_float("lam", lam)
     width = lasso_width(k, max_nonzero=max_nonzero)
     G = atoms @ atoms.T if gram is None else np.ascontiguousarray(gram, dtype=X.dtype)
-    C = X @ atoms.T
+    C = correlations(X, atoms.T)
     n = X.shape[0]
     index = np.full((n, width), -1, dtype=np.int32)
     value = np.zeros((n, width), dtype=X.dtype)

@@ -12,7 +12,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from ._common import SparseCodes, greedy_options, positive_int
+from ._common import SparseCodes, correlations, greedy_options, positive_int
 
 __all__ = ["mp", "mp_width"]
 
@@ -51,7 +51,7 @@ def mp(
     S, tol = greedy_options(k, n_nonzero, tol)
     steps = 2 * S if max_steps is None else positive_int("max_steps", max_steps)
     G = atoms @ atoms.T if gram is None else np.ascontiguousarray(gram, dtype=X.dtype)
-    C = X @ atoms.T
+    C = correlations(X, atoms.T)
     xnorm = np.einsum("ij,ij->i", X, X)
     n = X.shape[0]
     index = np.full((n, S), -1, dtype=np.int32)

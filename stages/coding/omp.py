@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ._common import SparseCodes, greedy_options, orthogonal_pursuit
+from ._common import SparseCodes, correlations, greedy_options, orthogonal_pursuit
 
 __all__ = ["omp", "omp_width"]
 
@@ -60,7 +60,7 @@ def _pursue(X, atoms, n_nonzero, tol, gram, order_recursive: bool) -> SparseCode
     k = atoms.shape[0]
     S, tol = greedy_options(k, n_nonzero, tol)
     G = atoms @ atoms.T if gram is None else np.ascontiguousarray(gram, dtype=X.dtype)
-    C = X @ atoms.T  # (n, k): the floor product
+    C = correlations(X, atoms.T)  # (n, k): the floor product
     xnorm = np.einsum("ij,ij->i", X, X)
     n = X.shape[0]
     index = np.full((n, S), -1, dtype=np.int32)

@@ -14,7 +14,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from ._common import SparseCodes, nonnegative_float
+from ._common import SparseCodes, correlations, nonnegative_float
 
 __all__ = ["threshold", "threshold_width"]
 
@@ -44,7 +44,7 @@ def threshold(
     """
     alpha = nonnegative_float("alpha", alpha)
     k = atoms.shape[0]
-    C = X @ atoms.T
+    C = correlations(X, atoms.T)
     n = X.shape[0]
     index = np.empty((n, k), dtype=np.int32)
     value = np.empty((n, k), dtype=X.dtype)

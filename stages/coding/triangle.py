@@ -11,7 +11,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from ._common import SparseCodes
+from ._common import SparseCodes, correlations
 
 __all__ = ["triangle", "triangle_width"]
 
@@ -31,7 +31,7 @@ def triangle(X: np.ndarray, atoms: np.ndarray) -> SparseCodes:
         Width ``k``; slots in increasing atom order; values ``> 0``.
     """
     k = atoms.shape[0]
-    C = X @ atoms.T
+    C = correlations(X, atoms.T)
     xnorm = np.einsum("ij,ij->i", X, X)
     wnorm = np.einsum("ij,ij->i", atoms, atoms)
     n = X.shape[0]
