@@ -34,8 +34,8 @@ def _atoms(rng, k, d, dtype=np.float64):
 @pytest.fixture(scope="module")
 def encoder():
     rng = np.random.default_rng(1)
-    return fit_learned_encoder(rng.standard_normal((200, D)), _atoms(np.random.default_rng(0), K, D),
-                               "fista", 3, lam=0.3, n_steps=30)
+    W = _atoms(np.random.default_rng(0), K, D)
+    return fit_learned_encoder(rng.standard_normal((200, D)), W, "fista", 3, lam=0.3, n_steps=30)
 
 
 def _options(method, encoder):
