@@ -61,6 +61,22 @@ Methods and their options
     ``max_nonzero``.
 
 The lasso objective is ``½‖x − Wᵀz‖² + lam·‖z‖₁`` with ``W`` the atoms (k, d).
+
+Helpers
+-------
+:func:`code_width` gives the slots per row a coder returns from its options alone (for
+sizing fixed-width stores); :meth:`SparseCodes.limit` cuts codes to fewer slots and
+says how many rows lost nonzeros; :func:`lambda_for_sparsity` picks ``lam`` for a target
+mean number of nonzeros; :func:`fit_learned_encoder` trains the ``learned`` coder and
+:class:`LearnedEncoder` stores it (``arrays()``/``attrs()``/``from_stored``).
+
+Implementation notes
+--------------------
+Per-row algorithms run inside numba-compiled kernels (``cache=True``: compiled once per
+machine, about a second per kernel and dtype, then loaded from ``__pycache__``), single
+threaded so that worker processes × threads stay within the cores. The one product
+with the dictionary goes through :func:`._common.correlations`, which calls BLAS with a
+fixed block shape so that a row's result never depends on the other rows of its chunk.
 """
 
 from __future__ import annotations
