@@ -534,15 +534,42 @@ def solve_spd_dropping(A, b, out):  # pragma: no cover - compiled
 _BLOCK_ROWS = 384
 
 
-def correlations(X: np.ndarray, M: np.ndarray) -> np.ndarray:
-    """``X @ M`` computed so that each row's bytes do not depend on the other rows.
+def correlation_blocks(X: np.ndarray, M: np.ndarray):
+    """Yield ``(start, stop, X[start:stop] @ M)`` block by block, row-invariantly.
 
     BLAS libraries choose kernels and tile edges from the shape and memory alignment
     of the whole call (OpenBLAS was seen to give other last bits for 1–3-row calls and
-    for rows in a tile edge), so a chunk coded in two pieces could differ in the last
+    for rows on a tile edge), so a chunk coded in two pieces could differ in the last
     bit from one call. Here every call has the same shape (``_BLOCK_ROWS`` rows, the
     last block zero-padded) and reads an aligned copy, so a row's result depends on
-    that row alone. The extra cost is one copy of ``X``.
+    that row alone. The extra cost is one copy of ``X``; a coder that consumes each
+    block at once also keeps the product in cache instead of memory.
+
+    Parameters
+    ----------
+    X : ndarray of shape (n_rows, d)
+    M : ndarray of shape (d, m), same dtype
+
+    Yields
+    ------
+    start, stop : int
+    block : ndarray of shape (stop - start, m)
+        Valid until the next block is produced.
+    """
+    n, d = X.shape
+    buf = np.zeros((_BLOCK_ROWS, d), dtype=X.dtype)
+    out = np.empty((_BLOCK_ROWS, M.shape[1]), dtype=X.dtype)
+    for start in range(0, n, _BLOCK_ROWS):  # loop over blocks of rows, not rows
+        stop = min(n, start + _BLOCK_ROWS)
+        buf[: stop - start] = X[start:stop]
+        buf[stop - start:] = 0
+        np.matmul(buf, M, out=out)
+        yield start, stop, out[: stop - start]
+
+
+def correlations(X: np.ndarray, M: np.ndarray) -> np.ndarray:
+    """``X @ M`` with each row's bytes independent of the other rows (see
+    :func:`correlation_blocks`).
 
     Parameters
     ----------
@@ -553,15 +580,7 @@ def correlations(X: np.ndarray, M: np.ndarray) -> np.ndarray:
     -------
     ndarray of shape (n_rows, m)
     """
-    n, d = X.shape
-    out = np.empty((n, M.shape[1]), dtype=X.dtype)
-    buf = np.zeros((_BLOCK_ROWS, d), dtype=X.dtype)
-    for start in range(0, n, _BLOCK_ROWS):  # loop over blocks of rows, not rows
-        stop = min(n, start + _BLOCK_ROWS)
-        buf[: stop - start] = X[start:stop]
-        if stop - start == _BLOCK_ROWS:
-            np.matmul(buf, M, out=out[start:stop])
-        else:
-            buf[stop - start:] = 0
-            out[start:stop] = (buf @ M)[: stop - start]
+    out = np.empty((X.shape[0], M.shape[1]), dtype=X.dtype)
+    for start, stop, block in correlation_blocks(X, M):
+        out[start:stop] = block
     return out

@@ -14,7 +14,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from ._common import SparseCodes, correlations, nonnegative_float
+from ._common import SparseCodes, correlation_blocks, nonnegative_float
 
 __all__ = ["threshold", "threshold_width"]
 
@@ -44,12 +44,13 @@ def threshold(
     """
     alpha = nonnegative_float("alpha", alpha)
     k = atoms.shape[0]
-    C = correlations(X, atoms.T)
     n = X.shape[0]
     index = np.empty((n, k), dtype=np.int32)
     value = np.empty((n, k), dtype=X.dtype)
     count = np.empty(n, dtype=np.int32)
-    _threshold_rows(C, X.dtype.type(alpha), bool(split_sign), index, value, count)
+    for a, b, C in correlation_blocks(X, atoms.T):  # each block thresholded while cached
+        _threshold_rows(C, X.dtype.type(alpha), bool(split_sign), index[a:b], value[a:b],
+                        count[a:b])
     return SparseCodes(index, value, count, 2 * k if split_sign else k)
 
 

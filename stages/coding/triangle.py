@@ -11,7 +11,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from ._common import SparseCodes, correlations
+from ._common import SparseCodes, correlation_blocks
 
 __all__ = ["triangle", "triangle_width"]
 
@@ -31,14 +31,14 @@ def triangle(X: np.ndarray, atoms: np.ndarray) -> SparseCodes:
         Width ``k``; slots in increasing atom order; values ``> 0``.
     """
     k = atoms.shape[0]
-    C = correlations(X, atoms.T)
     xnorm = np.einsum("ij,ij->i", X, X)
     wnorm = np.einsum("ij,ij->i", atoms, atoms)
     n = X.shape[0]
     index = np.empty((n, k), dtype=np.int32)
     value = np.empty((n, k), dtype=X.dtype)
     count = np.empty(n, dtype=np.int32)
-    _triangle_rows(C, xnorm, wnorm, index, value, count)
+    for a, b, C in correlation_blocks(X, atoms.T):  # each block used while cached
+        _triangle_rows(C, xnorm[a:b], wnorm, index[a:b], value[a:b], count[a:b])
     return SparseCodes(index, value, count, k)
 
 
