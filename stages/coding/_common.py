@@ -282,6 +282,27 @@ def _pack_rows(dense, index, value, count):  # pragma: no cover - compiled
 
 
 @numba.njit(cache=True)
+def select_largest(mags, m, out):  # pragma: no cover - compiled
+    """Indices of the ``m`` largest entries of ``mags`` (n,) into ``out[:m]``.
+
+    Ties go to the lower index; order of ``out`` is by decreasing value. O(n·m) by
+    repeated scans, which for the small ``m`` used here is cheaper than a sort and
+    compiles much faster (numba's sorts take tens of seconds to compile).
+    """
+    n = mags.shape[0]
+    taken = np.zeros(n, dtype=np.bool_)
+    m = min(m, n)
+    for t in range(m):
+        best = -1
+        for j in range(n):
+            if not taken[j] and (best < 0 or mags[j] > mags[best]):
+                best = j
+        taken[best] = True
+        out[t] = best
+    return m
+
+
+@numba.njit(cache=True)
 def pack_row(z, i, index, value, count):  # pragma: no cover - compiled
     """Write the nonzeros of ``z`` (k,) into row ``i`` of the layout, atom order.
 
@@ -293,32 +314,18 @@ def pack_row(z, i, index, value, count):  # pragma: no cover - compiled
     for j in range(k):
         if z[j] != 0:
             c += 1
-    cut = -1.0
-    n_at_cut = 0
+    keep = np.ones(0, dtype=np.bool_)
     if c > width:
-        if width == 0:
-            count[i] = 0
-            return
-        mags = np.sort(np.abs(z))[::-1]
-        cut = mags[width - 1]  # keep > cut, then == cut by atom order
-        n_above = 0
-        for j in range(k):
-            if abs(z[j]) > cut:
-                n_above += 1
-        n_at_cut = width - n_above
+        picked = np.empty(width, dtype=np.int64)
+        select_largest(np.abs(z), width, picked)
+        keep = np.zeros(k, dtype=np.bool_)
+        for t in range(width):
+            keep[picked[t]] = True
     s = 0
     for j in range(k):
         v = z[j]
-        if v == 0:
+        if v == 0 or (c > width and not keep[j]):
             continue
-        if c > width:
-            a = abs(v)
-            if a < cut:
-                continue
-            if a == cut:
-                if n_at_cut == 0:
-                    continue
-                n_at_cut -= 1
         index[i, s] = j
         value[i, s] = v
         s += 1

@@ -14,7 +14,9 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from ._common import SparseCodes, correlations, greedy_options, positive_int, solve_spd_dropping
+from ._common import (
+    SparseCodes, correlations, greedy_options, positive_int, select_largest, solve_spd_dropping,
+)
 
 __all__ = ["cosamp", "cosamp_width"]
 
@@ -80,6 +82,18 @@ def _least_squares(G, c, T, m, coef):  # pragma: no cover - compiled
 
 
 @numba.njit(cache=True)
+def _sort_small(a, m):  # pragma: no cover - compiled
+    """Insertion sort of ``a[:m]`` in place (m is the sparsity, a handful)."""
+    for t in range(1, m):
+        v = a[t]
+        r = t - 1
+        while r >= 0 and a[r] > v:
+            a[r + 1] = a[r]
+            r -= 1
+        a[r + 1] = v
+
+
+@numba.njit(cache=True)
 def _cosamp_rows(C, G, xnorm, tol, max_iter, index, value, count):  # pragma: no cover
     n, k = C.shape
     S = index.shape[1]
@@ -91,6 +105,9 @@ def _cosamp_rows(C, G, xnorm, tol, max_iter, index, value, count):  # pragma: no
     T = np.empty(wide, dtype=np.int64)
     coef = np.empty(wide, dtype=dt)
     supp = np.empty(S, dtype=np.int64)
+    top = np.empty(min(2 * S, k), dtype=np.int64)
+    keep = np.empty(S, dtype=np.int64)
+    new = np.empty(S, dtype=np.int64)
     z = np.empty(S, dtype=dt)
     for i in range(n):
         c = C[i]
@@ -104,32 +121,34 @@ def _cosamp_rows(C, G, xnorm, tol, max_iter, index, value, count):  # pragma: no
             if best_err <= stop:
                 break
             # Merge the support with the 2s largest residual correlations.
-            order = np.argsort(-np.abs(alpha), kind="mergesort")
+            n_top = select_largest(np.abs(alpha), 2 * S, top)
             m = 0
             for t in range(m_supp):
                 T[m] = supp[t]
                 mark[supp[t]] = True
                 m += 1
-            for t in range(k):
-                if m == wide or t == 2 * S:
+            for t in range(n_top):
+                if m == wide:
                     break
-                j = order[t]
+                j = top[t]
                 if not mark[j]:
                     T[m] = j
                     mark[j] = True
                     m += 1
             _least_squares(G, c, T, m, coef)
             # Prune to the s largest, in increasing atom order, and re-fit.
-            keep = np.argsort(-np.abs(coef[:m]), kind="mergesort")[:S]
-            new = np.sort(T[keep])
-            changed = new.size != m_supp
-            for t in range(new.size):
+            n_keep = select_largest(np.abs(coef[:m]), S, keep)
+            for t in range(n_keep):
+                new[t] = T[keep[t]]
+            _sort_small(new, n_keep)
+            changed = n_keep != m_supp
+            for t in range(n_keep):
                 if not changed and new[t] != supp[t]:
                     changed = True
             for t in range(m):
                 mark[T[t]] = False
             m_new = 0
-            for t in range(new.size):
+            for t in range(n_keep):
                 supp[m_new] = new[t]
                 m_new += 1
             _least_squares(G, c, supp, m_new, z)
