@@ -8,9 +8,9 @@ across mini-batches with forgetting as in ``online``. A block left with no rows 
 window is re-seeded from the worst-represented rows of the batch.
 
 The atoms are returned grouped: rows ``l·s … (l+1)·s − 1`` are block ``l``, and
-``params["block_size"]`` is ``s``; the pairing coder is block OMP (one block per
-step), for which ``params["coder"]`` records OMP with ``s`` nonzeros until a block
-coder exists.
+``params["block_size"]`` is ``s``; the pairing coder, recorded in ``params["coder"]``,
+is block OMP with one active group of ``s`` atoms (it picks the block of largest
+projection energy, the same rule as the assignment here, and projects on it).
 
 Checkpoints hold ``atoms``, ``scatter`` (L, d, d), ``usage``, ``window``,
 ``objective``, ``batches_seen``, ``t``, ``n_replaced``, ``rng``; resume follows the
@@ -167,7 +167,8 @@ def subspaces(
     return LearnedDictionary(
         atoms=atoms,
         method="subspaces",
-        params={"coder": "omp", "coder_options": {"n_nonzero": s}, "block_size": s,
+        params={"coder": "block-omp", "coder_options": {"group_size": s, "n_groups": 1},
+                "block_size": s,
                 "n_blocks": n_blocks, "batch_size": int(batch_size),
                 "n_passes": int(n_passes), "forget": float(forget),
                 "replace_every": int(replace_every), "seed": int(seed)},
