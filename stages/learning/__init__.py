@@ -43,7 +43,7 @@ import numpy as np
 
 from ..errors import InputError, problem
 from ..prep import Normaliser
-from ._common import LearnedDictionary, as_rows, coded, residual_energy
+from ._common import LearnedDictionary, as_rows, atom_usage, coded, residual_energy
 from .batch import batch, batch_statistics, batch_update, combine_statistics
 from .kmeans import kmeans
 from .online import online
@@ -291,6 +291,6 @@ def _relative_error(
         piece = X[start : start + _PROBE_PIECE]
         Z = coded(piece, W, coder, coder_options)
         err += float(residual_energy(piece, Z, W).sum())
-        usage += (Z != 0).sum(axis=0)
+        usage += atom_usage(Z)
     total = float(np.einsum("ij,ij->", X, X))
     return (err / total if total > 0 else 0.0), usage.tolist()

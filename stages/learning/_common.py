@@ -12,6 +12,7 @@ from dataclasses import dataclass, field
 from typing import Any, Callable, Iterable, Iterator
 
 import numpy as np
+from scipy import sparse
 
 from ..coding import code
 from ..errors import InputError, problem
@@ -196,13 +197,14 @@ def iter_batches(
             yield rows[np.sort(order[b * batch_size : (b + 1) * batch_size])], True
 
 
-def residual_energy(X: np.ndarray, Z: np.ndarray, W: np.ndarray) -> np.ndarray:
+def residual_energy(X: np.ndarray, Z: np.ndarray | sparse.csr_matrix,
+                    W: np.ndarray) -> np.ndarray:
     """Squared residual norm of each row.
 
     Parameters
     ----------
     X : ndarray of shape (m, d)
-    Z : ndarray of shape (m, k)
+    Z : ndarray or sparse matrix of shape (m, k)
     W : ndarray of shape (k, d)
 
     Returns
@@ -210,7 +212,7 @@ def residual_energy(X: np.ndarray, Z: np.ndarray, W: np.ndarray) -> np.ndarray:
     ndarray of shape (m,)
         ``‖x_i − z_i W‖²``.
     """
-    R = X - Z @ W
+    R = X - np.asarray(Z @ W)
     return np.einsum("ij,ij->i", R, R)
 
 
@@ -374,9 +376,23 @@ def check_resume(resume: dict | None, method: str, keys: tuple[str, ...]) -> dic
     return resume
 
 
-def coded(X: np.ndarray, W: np.ndarray, coder: str, coder_options: dict) -> np.ndarray:
-    """Dense codes of ``X`` (m, d) over ``W`` (k, d) with a named coder: shape (m, k)."""
-    return np.asarray(code(X, W, coder, **coder_options).dense(), dtype=np.float64)
+def coded(X: np.ndarray, W: np.ndarray, coder: str, coder_options: dict) -> sparse.csr_matrix:
+    """Codes of ``X`` (m, d) over ``W`` (k, d) with a named coder, sparse (m, k), float64.
+
+    Kept sparse because the learners' products with the codes (``Zᵀ Z``, ``Zᵀ X``,
+    ``Z W``) then cost in proportion to the nonzeros, not to ``m · k``.
+    """
+    codes = code(X, W, coder, **coder_options)
+    used = (codes.index >= 0) & (codes.value != 0)
+    rows = np.broadcast_to(np.arange(codes.index.shape[0])[:, None], codes.index.shape)
+    return sparse.csr_matrix(
+        (codes.value[used].astype(np.float64), (rows[used], codes.index[used])),
+        shape=(X.shape[0], codes.n_atoms))
+
+
+def atom_usage(Z: sparse.csr_matrix) -> np.ndarray:
+    """Rows using each atom: ndarray of shape (k,), int64, from sparse codes (m, k)."""
+    return np.bincount(Z.indices, minlength=Z.shape[1]).astype(np.int64)
 
 
 def refresh_atoms(

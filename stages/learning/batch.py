@@ -35,6 +35,7 @@ from ._common import (
     CheckpointClock,
     LearnedDictionary,
     as_rows,
+    atom_usage,
     bcd_sweep,
     check_resume,
     coded,
@@ -77,10 +78,10 @@ def batch_statistics(
     X = as_rows(rows, "chunk rows")
     W = as_rows(atoms, "atoms", X.shape[1])
     Z = coded(X, W, coder, default_coder_options(coder, coder_options))
-    R = X - Z @ W
+    R = X - Z @ W  # sparse (m, k) @ dense (k, d): a dense array
     energy = np.einsum("ij,ij->i", R, R)
     order = np.argsort(-energy, kind="stable")[: W.shape[0]]
-    return {"A": Z.T @ Z, "B": Z.T @ X, "usage": (Z != 0).sum(axis=0).astype(np.int64),
+    return {"A": (Z.T @ Z).toarray(), "B": Z.T @ X, "usage": atom_usage(Z),
             "energy": float(energy.sum()), "n_rows": int(X.shape[0]),
             "worst": X[order], "worst_energy": energy[order]}
 

@@ -3,12 +3,13 @@
 Each mini-batch ``X`` (m, d) is coded with the current atoms, ``Z`` (m, k); the
 gradient of the batch loss ``½‖X − Z W‖²`` is ``−Zᵀ(X − Z W)``, and the step is
 
-    W ← unit_rows(W + η_t Zᵀ(X − Z W) / L),    η_t = step / sqrt(1 + t / step_halflife)
+    W ← unit_rows(W + η_t Zᵀ(X − Z W) / L),    η_t = step / sqrt(1 + t / τ)
 
-with ``L = ‖Zᵀ Z‖₂`` (the batch gradient's Lipschitz constant, so ``η_t ≤ 1`` never
+with ``τ`` = ``step_decay_batches`` (the step halves after ``3τ`` batches) and
+``L = ‖Zᵀ Z‖₂`` (the batch gradient's Lipschitz constant, so ``η_t ≤ 1`` never
 overshoots on the batch). Projecting on the unit sphere after the step is the usual
-constraint handling (e.g. Aharon & Elad's and Mairal et al.'s formulations keep atoms
-unit-norm).
+constraint handling (the formulations of Aharon, Elad & Bruckstein and of Mairal et
+al. keep atoms unit-norm).
 
 ``averaged-sgd`` returns the running average of the iterates with polynomially
 decaying weights (``W̄_t = (1 − ω_t) W̄_{t−1} + ω_t W_t`` with
@@ -31,6 +32,7 @@ from ._common import (
     CheckpointClock,
     LearnedDictionary,
     as_rows,
+    atom_usage,
     check_resume,
     coded,
     coherence,
@@ -73,7 +75,7 @@ def averaged_sgd(
         ``k``.
     **options
         ``coder`` (str, "omp"), ``coder_options`` (dict), ``batch_size`` (256),
-        ``n_passes`` (1), ``step`` (1.0, in units of 1/L), ``step_halflife``
+        ``n_passes`` (1), ``step`` (1.0, in units of 1/L), ``step_decay_batches``
         (batches, 10), ``average_decay`` (3.0, averaged only), ``replace_every``
         (10), ``dead_share`` (0.15), ``duplicate_cos`` (0.98), ``seed`` (0),
         ``init`` ((n_atoms, d) array), ``checkpoint``, ``checkpoint_every`` (10),
@@ -97,7 +99,7 @@ def _run(
     batch_size: int = 256,
     n_passes: int = 1,
     step: float = 1.0,
-    step_halflife: float = 10.0,
+    step_decay_batches: float = 10.0,
     average_decay: float = 3.0,
     replace_every: int = 10,
     dead_share: float = 0.15,
@@ -160,11 +162,11 @@ def _run(
         energy = np.einsum("ij,ij->i", R, R)
         objective.append(float(0.5 * energy.mean()))
         t += 1
-        lipschitz = float(np.linalg.norm(Z.T @ Z, 2))
+        lipschitz = float(np.linalg.norm((Z.T @ Z).toarray(), 2))
         if lipschitz > 0:
-            eta = step / np.sqrt(1.0 + t / step_halflife)
+            eta = step / np.sqrt(1.0 + t / step_decay_batches)
             W = unit_rows(W + (eta / lipschitz) * (Z.T @ R))
-        used = (Z != 0).sum(axis=0)
+        used = atom_usage(Z)
         usage += used
         window += used
         if replace_every and t % replace_every == 0:
@@ -181,7 +183,8 @@ def _run(
     atoms = unit_rows(avg) if averaged else W
     params = {
         "coder": coder, "coder_options": coder_options, "batch_size": int(batch_size),
-        "n_passes": int(n_passes), "step": float(step), "step_halflife": float(step_halflife),
+        "n_passes": int(n_passes), "step": float(step),
+        "step_decay_batches": float(step_decay_batches),
         "replace_every": int(replace_every), "dead_share": float(dead_share),
         "duplicate_cos": float(duplicate_cos), "seed": int(seed),
     }
