@@ -21,7 +21,7 @@ Everything here is a pure function of in-memory numpy arrays. Example::
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field, fields, replace
 
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
@@ -184,31 +184,58 @@ def _per_axis(value: int | tuple[int, ...], n: int, what: str) -> tuple[int, ...
 
 @dataclass(frozen=True)
 class Normaliser:
-    """Per-patch mean removal and contrast normalisation, fitted once on a sample.
+    """Preprocessing fitted once on a training sample and applied identically later.
 
-    ``x -> (x - mean(x)) / sqrt(var(x) + eps)`` per row, where ``eps`` is
-    ``contrast_floor`` times the mean patch variance of the training sample. The floor
-    keeps near-silent patches (pure sensor noise, flat image regions) from being blown up
-    to unit contrast; the trade's common choice is a fixed fraction of the typical
-    variance (a rule of thumb, not a derived value).
+    Steps, in order, each optional:
+
+    1. per-patch mean removal: ``x ← x − mean(x)`` (``remove_mean``);
+    2. per-patch contrast normalisation: ``x ← x / sqrt(mean(x²) + eps)``
+       (``contrast``), where ``eps`` is ``contrast_floor`` times the mean patch
+       variance of the training sample. The floor keeps near-silent patches (pure
+       sensor noise, flat image regions) from being blown up to unit contrast; the
+       trade's common choice is a fixed fraction of the typical variance (a rule of
+       thumb, not a derived value);
+    3. dataset mean removal: ``x ← x − μ`` with ``μ`` the training sample's mean row
+       (``center``);
+    4. ZCA whitening: ``x ← (x − μ) M`` with ``M = U diag(1/sqrt(λ + whiten_eps)) Uᵀ``
+       from the eigen-decomposition ``C = U diag(λ) Uᵀ`` of the training sample's
+       covariance after steps 1-2 (``whiten``; implies centring). ``whiten_eps``
+       keeps directions of tiny variance (mostly noise) from being amplified; it is
+       in the units of the variance of the rows after steps 1-2 (with contrast
+       normalisation on, the per-feature variance is about 1, and 0.1 is a common
+       rule of thumb for image patches).
+
+    Each step is a function of one row and the fitted arrays only, so rows are
+    transformed independently of their chunk.
 
     Attributes
     ----------
     remove_mean : bool
-        Subtract each patch's own mean.
     contrast : bool
-        Divide each patch by its regularised standard deviation.
+    contrast_floor : float
     eps : float
         The fitted variance floor (0 until :meth:`fit`).
+    center : bool
+    whiten : bool
+    whiten_eps : float
+    mean : ndarray of shape (d,) or None
+        Fitted dataset mean (``center`` or ``whiten``).
+    whitening : ndarray of shape (d, d) or None
+        Fitted symmetric ZCA matrix ``M`` (``whiten``).
     """
 
     remove_mean: bool = True
     contrast: bool = True
     contrast_floor: float = 0.1
     eps: float = 0.0
+    center: bool = False
+    whiten: bool = False
+    whiten_eps: float = 0.1
+    mean: np.ndarray | None = field(default=None, compare=False, repr=False)
+    whitening: np.ndarray | None = field(default=None, compare=False, repr=False)
 
     def fit(self, patches: np.ndarray) -> "Normaliser":
-        """Fit the variance floor on a sample.
+        """Fit the variance floor, the mean and the whitening on a sample.
 
         Parameters
         ----------
@@ -219,14 +246,36 @@ class Normaliser:
         Normaliser
             A new, fitted normaliser.
         """
-        var = _centred(patches, self.remove_mean).var(axis=1).mean()
-        eps = float(self.contrast_floor * var) if self.contrast else 0.0
-        # A floor of exactly 0 would divide constant patches by zero.
-        eps = max(eps, float(np.finfo(np.float32).tiny)) if self.contrast else 0.0
-        return Normaliser(self.remove_mean, self.contrast, self.contrast_floor, eps)
+        patches = _checked(patches)
+        out = _centred(patches, self.remove_mean)
+        eps = 0.0
+        if self.contrast:
+            var = out.var(axis=1).mean()
+            # A floor of exactly 0 would divide constant patches by zero.
+            eps = max(float(self.contrast_floor * var), float(np.finfo(np.float32).tiny))
+            out = _contrast(out, eps)
+        mean = whitening = None
+        if self.center or self.whiten:
+            mean = out.mean(axis=0, dtype=np.float64)
+        if self.whiten:
+            if self.whiten_eps < 0:
+                raise InputError(problem("whiten_eps", "a value ≥ 0", repr(self.whiten_eps),
+                                         "Use e.g. 0.1 (units of the rows' variance)."))
+            centred = np.asarray(out, dtype=np.float64) - mean
+            cov = centred.T @ centred / max(centred.shape[0] - 1, 1)
+            lam, U = np.linalg.eigh(cov)
+            lam = np.clip(lam, 0.0, None)
+            # Rank test relative to the largest eigenvalue (rounding leaves ~1e-16).
+            if self.whiten_eps == 0 and lam.min() <= 1e-12 * max(lam.max(), 1e-300):
+                raise InputError(problem("whitening", "a full-rank covariance when whiten_eps = 0",
+                                         f"rank {int((lam > 1e-12 * lam.max()).sum())} of {lam.size}",
+                                         "Set whiten_eps > 0 (per-patch mean removal "
+                                         "always removes one direction)."))
+            whitening = (U / np.sqrt(lam + self.whiten_eps)) @ U.T
+        return replace(self, eps=eps, mean=mean, whitening=whitening)
 
     def apply(self, patches: np.ndarray) -> np.ndarray:
-        """Normalise patches row by row (each row independently of the others).
+        """Transform patches row by row (each row independently of the others).
 
         Parameters
         ----------
@@ -236,27 +285,75 @@ class Normaliser:
         -------
         ndarray of shape (n_patches, d), same floating dtype
         """
+        if (self.center or self.whiten) and self.mean is None or (
+            self.whiten and self.whitening is None
+        ):
+            raise InputError(problem("Normaliser", "a fitted normaliser (mean/whitening set)",
+                                     "an unfitted one", "Call fit() on a training sample first."))
         out = _centred(patches, self.remove_mean)
         if self.contrast:
-            scale = np.sqrt(np.mean(out * out, axis=1, keepdims=True) + self.eps)
-            out = out / scale.astype(out.dtype, copy=False)
+            out = _contrast(out, self.eps)
+        if self.mean is not None:
+            out = out - self.mean.astype(out.dtype, copy=False)
+        if self.whitening is not None:
+            out = out @ self.whitening.astype(out.dtype, copy=False)
         return out
 
     def to_attrs(self) -> dict:
         """Plain-JSON scalars of the fitted state, for Zarr attributes."""
-        return {k: (bool(v) if isinstance(v, bool) else float(v)) for k, v in asdict(self).items()}
+        return {f.name: (bool(v) if isinstance(v, bool) else float(v))
+                for f in fields(self) if f.name not in _ARRAYS
+                for v in [getattr(self, f.name)]}
 
     def arrays(self) -> dict[str, np.ndarray]:
-        """Fitted arrays stored beside the atoms (none for per-patch normalisation)."""
-        return {}
+        """Fitted arrays stored beside the atoms: ``mean`` (d,), ``whitening`` (d, d).
+
+        Returns
+        -------
+        dict of str to ndarray
+            Only the arrays that were fitted (empty for per-patch steps only).
+        """
+        return {name: getattr(self, name) for name in _ARRAYS if getattr(self, name) is not None}
 
     @classmethod
     def from_stored(cls, attrs: dict, arrays: dict[str, np.ndarray]) -> "Normaliser":
         """Inverse of :meth:`to_attrs` and :meth:`arrays`."""
-        return cls(**attrs)
+        scalars = {f.name for f in fields(cls)} - set(_ARRAYS)
+        unknown = set(attrs) - scalars
+        if unknown:
+            raise InputError(problem("stored preprocessing", f"attributes among {sorted(scalars)}",
+                                     f"unknown {sorted(unknown)}",
+                                     "Read it with the atomline version that wrote it."))
+        stored = {name: np.asarray(arrays[name], dtype=np.float64)
+                  for name in _ARRAYS if name in arrays}
+        made = cls(**attrs, **stored)
+        if ((made.center or made.whiten) and made.mean is None) or (
+            made.whiten and made.whitening is None
+        ):
+            raise InputError(problem("stored preprocessing", "the fitted mean/whitening arrays",
+                                     f"arrays {sorted(arrays)}",
+                                     "Store Normaliser.arrays() beside its attributes."))
+        return made
+
+
+_ARRAYS = ("mean", "whitening")
+
+
+def _checked(patches: np.ndarray) -> np.ndarray:
+    patches = np.asarray(patches)
+    if patches.ndim != 2 or patches.shape[0] == 0 or patches.dtype.kind != "f":
+        raise InputError(problem("preprocessing sample", "a non-empty float array (rows, d)",
+                                 f"shape {patches.shape}, dtype {patches.dtype}",
+                                 "Fit on patches as floating rows."))
+    return patches
 
 
 def _centred(patches: np.ndarray, remove_mean: bool) -> np.ndarray:
     if remove_mean:
         return patches - patches.mean(axis=1, keepdims=True)
     return patches
+
+
+def _contrast(centred: np.ndarray, eps: float) -> np.ndarray:
+    scale = np.sqrt(np.mean(centred * centred, axis=1, keepdims=True) + eps)
+    return centred / scale.astype(centred.dtype, copy=False)

@@ -11,6 +11,7 @@ the finished dictionary instead of training again.
 
 from __future__ import annotations
 
+import inspect
 from typing import Any
 
 import numpy as np
@@ -18,7 +19,7 @@ from prefect import task
 from prefect.cache_policies import NO_CACHE
 
 from .errors import InputError, problem
-from .learning import learn
+from .learning import METHODS, learn
 from .prep import Normaliser, PatchGeometry
 from .workspace import Workspace, fingerprint_params, iter_row_chunks
 
@@ -88,6 +89,10 @@ def train_dictionary(
     geometry = PatchGeometry.for_records(arr.shape[1:], patch_size, stride)
     coder_options = {"n_nonzero": 5} if coder_options is None else dict(coder_options)
     learner_options = dict(learner_options or {})
+    # pca, kmeans and subspaces fix their own coder (recorded in the result's params);
+    # the others code their mini-batches with the coder given here.
+    takes_coder = method in METHODS and "coder" in inspect.signature(METHODS[method]).parameters
+    coder_kw = {"coder": coder, "coder_options": coder_options} if takes_coder else {}
     normaliser = Normaliser(**(preprocessing or {}))
     if sample_patches < n_atoms:
         raise InputError(problem("sample_patches", f"at least n_atoms = {n_atoms}",
@@ -97,8 +102,8 @@ def train_dictionary(
         "geometry": geometry.to_attrs(),
         "n_atoms": int(n_atoms),
         "method": method,
-        "coder": coder,
-        "coder_options": coder_options,
+        "coder": coder if takes_coder else None,
+        "coder_options": coder_options if takes_coder else None,
         "learner_options": learner_options,
         "preprocessing": normaliser.to_attrs(),
         "sample_patches": int(sample_patches),
@@ -115,12 +120,17 @@ def train_dictionary(
             return _manifest(ws.load_dictionary(dict_id).attrs, dict_id, reused=True)
         sample = _sample_patches(arr, geometry, sample_patches, seed,
                                  read=lambda c: ws.read_chunk(records, c, arr))
+        # Checkpoints live in the workspace: a killed run resumes from the last one and
+        # ends with the same atoms as an uninterrupted run.
         learned = learn(
-            sample, n_atoms, method, preprocessing=normaliser, coder=coder,
-            coder_options=coder_options, seed=seed, **learner_options,
+            sample, n_atoms, method, preprocessing=normaliser, seed=seed,
+            checkpoint=lambda state: ws.save_checkpoint(dict_id, state),
+            resume=ws.load_checkpoint(dict_id), **coder_kw, **learner_options,
         )
         attrs = dict(
             recipe,
+            coder=learned.params.get("coder", coder),
+            coder_options=learned.params.get("coder_options", coder_options),
             records=records,
             n_features=geometry.n_features,
             preprocessing=learned.preprocessing.to_attrs(),

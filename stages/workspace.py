@@ -873,6 +873,56 @@ class Workspace:
                                       f"shape {atoms.shape}", "The dictionary was altered; train it again."))
         return StoredDictionary(dict_id, atoms, attrs, arrays)
 
+    def save_checkpoint(self, dict_id: str, state: dict) -> None:
+        """Keep a learner's state while ``dictionaries/<dict_id>`` is being trained.
+
+        The state (numpy arrays and plain-JSON values) goes into a new numbered group
+        under ``dictionaries/<dict_id>/checkpoints``, whose ``complete`` attribute is
+        written last; older checkpoints are removed only after that. Storing the
+        finished dictionary replaces the whole group, checkpoints included.
+
+        Parameters
+        ----------
+        dict_id : str
+        state : dict
+            As passed to a learner's ``checkpoint`` callback.
+        """
+        base = self.root.require_group(f"dictionaries/{_check_name(dict_id, 'dictionary id')}")
+        ckpts = base.require_group("checkpoints")
+        older = sorted(ckpts.group_keys())
+        seq = f"{int(older[-1]) + 1:08d}" if older else f"{0:08d}"
+        g = ckpts.create_group(seq)
+        arrays, values = {}, {}
+        for i, (key, value) in enumerate(sorted(state.items())):
+            if isinstance(value, np.ndarray):
+                g.create_array(f"a{i}", data=value)
+                arrays[key] = f"a{i}"
+            else:
+                values[key] = value
+        g.attrs.update(_plain({"arrays": arrays, "values": values}))
+        g.attrs["complete"] = True
+        for old in older:
+            del ckpts[old]
+
+    def load_checkpoint(self, dict_id: str) -> dict | None:
+        """The latest complete checkpoint of a dictionary in training, or ``None``."""
+        path = f"dictionaries/{_check_name(dict_id, 'dictionary id')}/checkpoints"
+        if path not in self.root:
+            return None
+        for seq in sorted(self.root[path].group_keys(), reverse=True):
+            g = self.root[f"{path}/{seq}"]
+            attrs = dict(g.attrs)
+            if attrs.get("complete") is not True:
+                continue  # cut off while being written: fall back to the one before
+            try:
+                _check_group_members(g, f"{path}/{seq}")
+                state = dict(attrs["values"])
+                state.update({k: np.asarray(g[name][:]) for k, name in attrs["arrays"].items()})
+            except (KeyError, FileNotFoundError):
+                continue  # removed by its writer while being read (a newer one exists)
+            return state
+        return None
+
     def has_dictionary(self, dict_id: str) -> bool:
         """Whether a complete dictionary ``dict_id`` exists."""
         path = f"dictionaries/{dict_id}"

@@ -3,7 +3,9 @@
 Every coder takes a chunk of rows ``X`` (n_rows, d) and a fixed dictionary ``atoms``
 (k, d), works on all rows at once, and returns the fixed-width layout
 :class:`SparseCodes` (``index``/``value``/``count``) that the workspace stores; call
-``.dense()`` for an (n_rows, k) array.
+``.dense()`` for an (n_rows, n_atoms) array. Each row is coded on its own (no stopping
+rule is shared across rows), so a chunk coded in pieces gives the same bytes as in one
+call. Coders work in the dtype of ``X`` (float32 or float64).
 
 Example
 -------
@@ -16,10 +18,65 @@ Example
 >>> sorted(codes.index[0].tolist()), np.round(codes.dense()[0, [3, 7]], 6).tolist()
 ([3, 7], [2.0, -0.5])
 
-Methods
--------
+Choosing a coder (common practice)
+----------------------------------
+Greedy coders (``mp``, ``omp``, ``ormp``, ``cosamp``) suit very few nonzeros per row,
+about 10 or fewer; beyond that, the lasso coders (``lars``, ``fista``, ``ista``) scale
+better and give codes that vary smoothly with the input. Among greedy coders ORMP is
+more accurate than OMP, which is much more accurate than MP; the order of speed is the
+reverse (MP fastest). The cheap encoders (``threshold``, ``triangle``, ``hard``) cost one
+product and suit large dictionaries learned for them; ``learned`` approximates a slower
+coder with a few trained layers.
+
+Methods and their options
+-------------------------
+``mp``
+    Matching pursuit: ``n_nonzero`` (distinct atoms), ``tol``, ``max_steps``, ``gram``.
 ``omp``
-    Orthogonal matching pursuit (greedy, L0): options ``n_nonzero``, ``tol``, ``gram``.
+    Orthogonal matching pursuit: ``n_nonzero``, ``tol`` (relative residual energy
+    ``‖r‖² ≤ tol·‖x‖²``), ``gram``.
+``ormp``
+    Order-recursive matching pursuit: as ``omp``.
+``cosamp``
+    Compressive sampling matching pursuit: ``n_nonzero``, ``tol``, ``max_iter``, ``gram``.
+``lars``
+    Exact lasso by the LARS homotopy: ``lam``, ``positive``, ``max_nonzero``, ``gram``.
+``ista`` / ``fista``
+    Proximal gradient for the lasso: ``lam``, ``positive``, ``init`` (warm start),
+    ``max_iter``, ``gap_tol`` (relative duality gap per row), ``max_nonzero``, ``gram``;
+    ``fista`` adds momentum with adaptive restart.
+``threshold``
+    Soft threshold of ``W x``: ``alpha`` (offset), ``split_sign`` (outputs
+    ``max(0, c − alpha)`` as atom ``j`` and ``max(0, −c − alpha)`` as atom ``k + j``:
+    ``n_atoms`` of the codes is then ``2k``, the width stays ``k``).
+``triangle``
+    k-means "triangle" activation: no options.
+``hard``
+    Hard assignment to the nearest atom: no options.
+``block-omp``
+    Block OMP over consecutive groups of atoms: ``group_size``, ``n_groups`` (active
+    groups), ``tol``, ``gram``.
+``learned``
+    Unrolled, trained ISTA (LISTA): ``encoder`` from :func:`fit_learned_encoder`,
+    ``max_nonzero``.
+
+The lasso objective is ``½‖x − Wᵀz‖² + lam·‖z‖₁`` with ``W`` the atoms (k, d).
+
+Helpers
+-------
+:func:`code_width` gives the slots per row a coder returns from its options alone (for
+sizing fixed-width stores); :meth:`SparseCodes.limit` cuts codes to fewer slots and
+says how many rows lost nonzeros; :func:`lambda_for_sparsity` picks ``lam`` for a target
+mean number of nonzeros; :func:`fit_learned_encoder` trains the ``learned`` coder and
+:class:`LearnedEncoder` stores it (``arrays()``/``attrs()``/``from_stored``).
+
+Implementation notes
+--------------------
+Per-row algorithms run inside numba-compiled kernels (``cache=True``: compiled once per
+machine, about a second per kernel and dtype, then loaded from ``__pycache__``), single
+threaded so that worker processes × threads stay within the cores. The one product
+with the dictionary goes through :func:`._common.correlations`, which calls BLAS with a
+fixed block shape so that a row's result never depends on the other rows of its chunk.
 """
 
 from __future__ import annotations
@@ -30,14 +87,72 @@ import numpy as np
 
 from ..errors import InputError, problem
 from ._common import SparseCodes, check_problem, gram
-from .omp import omp
+from .block_omp import block_omp, block_omp_width
+from .cosamp import cosamp, cosamp_width
+from .fista import fista
+from .ista import ista
+from .lars import lars, lasso_width
+from .mp import mp, mp_width
+from .omp import omp, omp_width
+from .hard import hard, hard_width
+from .learned import LearnedEncoder, fit_learned_encoder, learned, learned_width
+from .ormp import ormp, ormp_width
+from .sparsity import lambda_for_sparsity
+from .threshold import threshold, threshold_width
+from .triangle import triangle, triangle_width
 
-__all__ = ["code", "code_width", "METHODS", "SparseCodes", "gram"]
+__all__ = [
+    "code",
+    "code_width",
+    "METHODS",
+    "SparseCodes",
+    "gram",
+    "LearnedEncoder",
+    "fit_learned_encoder",
+    "lambda_for_sparsity",
+]
 
 #: Coders by their trade name. Each takes validated ``(X, atoms, **options)``.
 METHODS: dict[str, Callable[..., SparseCodes]] = {
+    "mp": mp,
     "omp": omp,
+    "ormp": ormp,
+    "cosamp": cosamp,
+    "lars": lars,
+    "ista": ista,
+    "fista": fista,
+    "threshold": threshold,
+    "triangle": triangle,
+    "hard": hard,
+    "block-omp": block_omp,
+    "learned": learned,
 }
+
+#: Slots per row each coder returns, from ``(n_atoms, **options)``.
+_WIDTHS: dict[str, Callable[..., int]] = {
+    "mp": mp_width,
+    "omp": omp_width,
+    "ormp": ormp_width,
+    "cosamp": cosamp_width,
+    "lars": lasso_width,
+    "ista": lasso_width,
+    "fista": lasso_width,
+    "threshold": threshold_width,
+    "triangle": triangle_width,
+    "hard": hard_width,
+    "block-omp": block_omp_width,
+    "learned": learned_width,
+}
+
+
+def _unknown(method: str) -> InputError:
+    return InputError(problem("coding method", f"one of {sorted(METHODS)}",
+                              repr(method), "Pick a listed method."))
+
+
+def _bad_options(method: str, exc: TypeError) -> InputError:
+    return InputError(problem(f"options of coder {method!r}", "the method's own options",
+                              str(exc), "See atomline.stages.coding's docstring."))
 
 
 def code(X: np.ndarray, atoms: np.ndarray, method: str = "omp", **options: Any) -> SparseCodes:
@@ -57,7 +172,8 @@ def code(X: np.ndarray, atoms: np.ndarray, method: str = "omp", **options: Any) 
     Returns
     -------
     SparseCodes
-        Codes of shape (n_rows, width) with ``.dense()`` of shape (n_rows, k).
+        Codes of shape (n_rows, ``code_width(method, k, **options)``) with ``.dense()``
+        of shape (n_rows, n_atoms) (``n_atoms`` is ``2k`` for split-sign thresholding).
 
     Raises
     ------
@@ -65,34 +181,38 @@ def code(X: np.ndarray, atoms: np.ndarray, method: str = "omp", **options: Any) 
         Unknown method or option, or an invalid problem (see ``check_problem``).
     """
     if method not in METHODS:
-        raise InputError(problem("coding method", f"one of {sorted(METHODS)}",
-                                 repr(method), "Pick a listed method."))
+        raise _unknown(method)
     X, atoms = check_problem(X, atoms)
     try:
         return METHODS[method](X, atoms, **options)
     except TypeError as exc:  # unknown or missing keyword: say which method wanted what
-        raise InputError(problem(f"options of coder {method!r}", "the method's own options",
-                                 str(exc), "See atomline.stages.coding's docstring.")) from exc
+        raise _bad_options(method, exc) from exc
 
 
 def code_width(method: str, n_atoms: int, **options: Any) -> int:
-    """Largest number of slots per row that ``method`` can return with ``options``.
+    """The number of slots per row ``code(X, atoms, method, **options)`` returns.
 
-    The encode stage sizes its fixed-width Zarr arrays with this.
+    It depends only on the method, the number of atoms and the options, never on the
+    rows, so fixed-width stores can be sized before any chunk is coded.
 
     Parameters
     ----------
     method : str
+        A key of :data:`METHODS`.
     n_atoms : int
-        ``k``.
+        ``k``, the number of atoms.
     **options
-        As for :func:`code`.
+        The options that will be passed to :func:`code`.
 
     Returns
     -------
     int
+        Slots per row (greedy: ``n_nonzero``; lasso: ``max_nonzero`` or ``k``;
+        threshold: ``k`` or ``2k`` with ``split_sign``; hard: 1; ...).
     """
-    if method == "omp":
-        return int(min(options["n_nonzero"], n_atoms))
-    raise InputError(problem("coding method", f"one of {sorted(METHODS)}", repr(method),
-                             "Pick a listed method."))
+    if method not in _WIDTHS:
+        raise _unknown(method)
+    try:
+        return int(_WIDTHS[method](int(n_atoms), **options))
+    except TypeError as exc:
+        raise _bad_options(method, exc) from exc

@@ -1,14 +1,31 @@
-"""Shared pieces of the coders: the sparse layout, input validation, the Gram matrix."""
+"""Shared pieces of the coders: the sparse layout, input validation, the Gram matrix,
+option checks and the compiled helpers several coders use.
+
+Compiled helpers use numba with ``cache=True`` (compiled once per machine, then loaded
+from ``__pycache__``) and no ``parallel``: each worker process stays single-threaded so
+workers × threads never exceeds the cores. They loop over rows *inside* compiled code,
+which is how a per-row algorithm runs at the speed of the hardware.
+"""
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numba
 import numpy as np
 
 from ..errors import InputError, problem
 
-__all__ = ["SparseCodes", "check_problem", "gram"]
+__all__ = [
+    "SparseCodes",
+    "check_problem",
+    "gram",
+    "lipschitz",
+    "positive_int",
+    "nonnegative_float",
+    "pack_dense",
+    "as_dense_init",
+]
 
 
 @dataclass(frozen=True)
@@ -86,6 +103,43 @@ class SparseCodes:
         value = np.where(slot_used, np.take_along_axis(dense, order, axis=1), 0)
         return cls(index, value.astype(dense.dtype, copy=False), count, k)
 
+    def limit(self, width: int) -> tuple["SparseCodes", int]:
+        """Keep at most ``width`` slots per row, those of largest ``|value|``.
+
+        Kept slots stay in their original order; ties keep the earlier slot.
+
+        Parameters
+        ----------
+        width : int
+            Slots per row of the result (>= 0).
+
+        Returns
+        -------
+        codes : SparseCodes
+            Shape (n_rows, width).
+        n_cut : int
+            Number of rows that had more than ``width`` nonzeros and lost some.
+        """
+        width = positive_int("width", width, allow_zero=True)
+        n, q = self.index.shape
+        if width >= q:
+            pad = width - q
+            index = np.pad(self.index, ((0, 0), (0, pad)), constant_values=-1)
+            value = np.pad(self.value, ((0, 0), (0, pad)))
+            return SparseCodes(index, value, self.count.copy(), self.n_atoms), 0
+        mag = np.where(self.index >= 0, np.abs(self.value), -1.0)
+        # Stable sort on -|value| ranks slots; keep the first `width` and restore order.
+        order = np.argsort(-mag, axis=1, kind="stable")[:, :width]
+        order.sort(axis=1)
+        index = np.take_along_axis(self.index, order, axis=1)
+        value = np.take_along_axis(self.value, order, axis=1)
+        used = index >= 0
+        # Unused slots sort last (mag = -1), so used slots are already packed first.
+        count = used.sum(axis=1).astype(np.int32)
+        n_cut = int(np.count_nonzero(self.count > width))
+        return SparseCodes(index, np.where(used, value, 0).astype(self.value.dtype),
+                           count, self.n_atoms), n_cut
+
 
 def check_problem(X: np.ndarray, atoms: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Validate a coding problem and bring both arrays to one floating dtype.
@@ -143,3 +197,397 @@ def gram(atoms: np.ndarray) -> np.ndarray:
         ``atoms @ atoms.T``.
     """
     return atoms @ atoms.T
+
+
+def lipschitz(atoms: np.ndarray) -> float:
+    """Largest eigenvalue of ``atoms @ atoms.T`` (the gradient's Lipschitz constant).
+
+    Parameters
+    ----------
+    atoms : ndarray of shape (k, d)
+
+    Returns
+    -------
+    float
+        ``‖atoms‖₂²``, computed from the smaller of the two Gram matrices.
+    """
+    small = atoms.T @ atoms if atoms.shape[1] < atoms.shape[0] else atoms @ atoms.T
+    top = float(np.linalg.eigvalsh(small.astype(np.float64))[-1])
+    return top if top > 0 else 1.0
+
+
+def positive_int(name: str, value: object, allow_zero: bool = False) -> int:
+    """Check an integer option (``>= 1``, or ``>= 0`` with ``allow_zero``)."""
+    low = 0 if allow_zero else 1
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)) \
+            or value < low:
+        raise InputError(problem(f"option {name}", f"an integer >= {low}", repr(value),
+                                 f"Pass {name}={max(low, 1)} or more."))
+    return int(value)
+
+
+def nonnegative_float(name: str, value: object) -> float:
+    """Check a finite real option ``>= 0``."""
+    try:
+        out = float(value)  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        out = float("nan")
+    if not np.isfinite(out) or out < 0:
+        raise InputError(problem(f"option {name}", "a finite number >= 0", repr(value),
+                                 f"Pass {name}=0 or more."))
+    return out
+
+
+def as_dense_init(init: "SparseCodes | np.ndarray | None", n: int, k: int,
+                  dtype: np.dtype) -> np.ndarray | None:
+    """Bring warm-start codes to a dense (n, k) array of ``dtype`` (``None`` stays)."""
+    if init is None:
+        return None
+    dense = init.dense() if isinstance(init, SparseCodes) else np.asarray(init)
+    if dense.shape != (n, k) or dense.dtype.kind != "f" or not np.isfinite(dense).all():
+        raise InputError(problem("option init", f"finite float codes of shape {(n, k)}",
+                                 f"shape {dense.shape}, dtype {dense.dtype}",
+                                 "Pass the codes of these rows (SparseCodes or dense)."))
+    return np.ascontiguousarray(dense, dtype=dtype)
+
+
+def pack_dense(dense: np.ndarray, width: int) -> SparseCodes:
+    """Pack dense codes into the fixed-width layout, keeping the largest |values|.
+
+    Nonzeros stay in increasing atom order. A row with more than ``width`` nonzeros
+    keeps its ``width`` largest by magnitude (ties: lower atom number).
+
+    Parameters
+    ----------
+    dense : ndarray of shape (n_rows, n_atoms)
+    width : int
+
+    Returns
+    -------
+    SparseCodes
+        Shape (n_rows, width).
+    """
+    n, k = dense.shape
+    index = np.full((n, width), -1, dtype=np.int32)
+    value = np.zeros((n, width), dtype=dense.dtype)
+    count = np.zeros(n, dtype=np.int32)
+    _pack_rows(dense, index, value, count)
+    return SparseCodes(index, value, count, k)
+
+
+@numba.njit(cache=True)
+def _pack_rows(dense, index, value, count):  # pragma: no cover - compiled
+    for i in range(dense.shape[0]):
+        pack_row(dense[i], i, index, value, count)
+
+
+@numba.njit(cache=True)
+def select_largest(mags, m, out):  # pragma: no cover - compiled
+    """Indices of the ``m`` largest entries of ``mags`` (n,) into ``out[:m]``.
+
+    Ties go to the lower index; order of ``out`` is by decreasing value. O(n·m) by
+    repeated scans, which for the small ``m`` used here is cheaper than a sort and
+    compiles much faster (numba's sorts take tens of seconds to compile).
+    """
+    n = mags.shape[0]
+    taken = np.zeros(n, dtype=np.bool_)
+    m = min(m, n)
+    for t in range(m):
+        best = -1
+        for j in range(n):
+            if not taken[j] and (best < 0 or mags[j] > mags[best]):
+                best = j
+        taken[best] = True
+        out[t] = best
+    return m
+
+
+@numba.njit(cache=True)
+def pack_row(z, i, index, value, count):  # pragma: no cover - compiled
+    """Write the nonzeros of ``z`` (k,) into row ``i`` of the layout, atom order.
+
+    With more nonzeros than slots, keep the largest magnitudes (ties: lower atom).
+    """
+    k = z.shape[0]
+    width = index.shape[1]
+    c = 0
+    for j in range(k):
+        if z[j] != 0:
+            c += 1
+    keep = np.ones(0, dtype=np.bool_)
+    if c > width:
+        picked = np.empty(width, dtype=np.int64)
+        select_largest(np.abs(z), width, picked)
+        keep = np.zeros(k, dtype=np.bool_)
+        for t in range(width):
+            keep[picked[t]] = True
+    s = 0
+    for j in range(k):
+        v = z[j]
+        if v == 0 or (c > width and not keep[j]):
+            continue
+        index[i, s] = j
+        value[i, s] = v
+        s += 1
+    for t in range(s, width):
+        index[i, t] = -1
+        value[i, t] = 0
+    count[i] = s
+
+
+@numba.njit(cache=True, inline="always")
+def soft(v, t):  # pragma: no cover - compiled
+    """Soft threshold of a scalar: sign(v) · max(|v| − t, 0)."""
+    if v > t:
+        return v - t
+    if v < -t:
+        return v + t
+    return 0.0 * v
+
+
+def greedy_options(n_atoms: int, n_nonzero: object, tol: object) -> tuple[int, float]:
+    """Validate the stopping options shared by the greedy coders.
+
+    Returns
+    -------
+    n_nonzero : int
+        Clipped to ``n_atoms``.
+    tol : float
+        Relative residual energy at which a row stops (0 when not given).
+    """
+    n_nonzero = positive_int("n_nonzero", n_nonzero)
+    tol = 0.0 if tol is None else nonnegative_float("tol", tol)
+    return min(n_nonzero, n_atoms), tol
+
+
+@numba.njit(cache=True)
+def append_atom(j, G, diag, U, Lm, s, alpha):  # pragma: no cover - compiled
+    """Grow the progressive Cholesky state of one row by atom ``j``.
+
+    State: ``Lm[:s, :s]`` the Cholesky factor of the active atoms' Gram block,
+    ``U[:s] = L⁻¹ G[active, :]`` and ``alpha`` (k,) the residual correlations. Writes
+    row ``s`` of ``Lm`` and ``U``, updates ``alpha`` and returns ``v_j`` (the new entry
+    of ``L⁻¹ c``; the residual energy drops by ``v_j²``). Returns NaN and changes
+    nothing when atom ``j`` lies (numerically) in the span of the active atoms.
+    """
+    k = alpha.shape[0]
+    eps = np.finfo(alpha.dtype).eps
+    ww = 0.0
+    for t in range(s):
+        ww += U[t, j] * U[t, j]
+    l2 = diag[j] - ww
+    if l2 <= 1e3 * eps * diag[j]:
+        return np.nan
+    for t in range(s):
+        Lm[s, t] = U[t, j]
+    el = np.sqrt(l2)
+    for jj in range(k):
+        U[s, jj] = G[j, jj]
+    for t in range(s):
+        wt = Lm[s, t]
+        if wt != 0:
+            for jj in range(k):
+                U[s, jj] -= wt * U[t, jj]
+    inv = 1.0 / el
+    vj = alpha[j] * inv
+    for jj in range(k):
+        u = U[s, jj] * inv
+        U[s, jj] = u
+        alpha[jj] -= vj * u
+    alpha[j] = 0.0  # exactly orthogonal to the residual now
+    Lm[s, s] = el
+    return vj
+
+
+@numba.njit(cache=True)
+def orthogonal_pursuit(C, G, xnorm, tol, order_recursive, index, value, count):  # pragma: no cover
+    """Per-row OMP / ORMP in the correlation domain with a progressive Cholesky factor.
+
+    For one row with correlations ``c = W x`` (k,), Gram ``G`` (k, k), active set ``I``
+    of size s, Cholesky factor ``L`` of ``G[I, I]``:
+
+    * ``U = L⁻¹ G[I, :]`` (s, k); ``v = L⁻¹ c[I]``; residual correlations
+      ``alpha = c − Uᵀ v``; squared residual ``‖x‖² − ‖v‖²``; ``q = Σ_t U[t]²``.
+    * Adding atom j: ``w = U[:, j]`` is the new row of ``L``, ``l = sqrt(G_jj − ‖w‖²)``,
+      ``u = (G[j] − wᵀU) / l``, ``v_j = alpha_j / l``; then ``alpha −= v_j u`` and the
+      residual energy drops by ``v_j²`` — no triangular solve until the end.
+    * OMP picks ``argmax |alpha_j|``; ORMP picks ``argmax alpha_j² / (G_jj − q_j)``, the
+      atom whose orthogonal update lowers the residual most (``G_jj − q_j`` is the
+      squared distance of atom j to the span of the active atoms).
+
+    A row stops at ``index.shape[1]`` atoms, when its residual energy is at most
+    ``tol · ‖x‖²``, when it is at round-off level, or when every candidate lies in the
+    span of the active atoms. Writes ``index``/``value``/``count`` in place, slots in
+    the order atoms were selected.
+    """
+    n, k = C.shape
+    S = index.shape[1]
+    dt = C.dtype
+    eps = np.finfo(dt).eps
+    U = np.zeros((S, k), dtype=dt)
+    Lm = np.zeros((S, S), dtype=dt)
+    v = np.zeros(S, dtype=dt)
+    z = np.zeros(S, dtype=dt)
+    alpha = np.empty(k, dtype=dt)
+    q = np.zeros(k, dtype=dt)
+    diag = np.empty(k, dtype=dt)
+    for j in range(k):
+        diag[j] = G[j, j]
+    for i in range(n):
+        for j in range(k):
+            alpha[j] = C[i, j]
+        if order_recursive:
+            q[:] = 0
+        err = xnorm[i]
+        stop = max(tol * xnorm[i], 16 * eps * xnorm[i])
+        s = 0
+        while s < S and err > stop:
+            best = -1
+            if order_recursive:
+                # argmax a_j² / den_j, compared as num·best_den > best_num·den_j so
+                # that no division runs per atom.
+                bnum = 0.0
+                bden = 1.0
+                for j in range(k):
+                    den = diag[j] - q[j]
+                    if den <= 1e3 * eps * diag[j]:
+                        continue
+                    num = alpha[j] * alpha[j]
+                    if num * bden > bnum * den:
+                        bnum = num
+                        bden = den
+                        best = j
+            else:
+                score = 0.0
+                for j in range(k):
+                    sc = abs(alpha[j])
+                    if sc > score:
+                        score = sc
+                        best = j
+            if best < 0:
+                break
+            j = best
+            vj = append_atom(j, G, diag, U, Lm, s, alpha)
+            if vj != vj:  # NaN: the best atom is (numerically) in the span: stop here
+                break
+            if order_recursive:
+                for jj in range(k):
+                    q[jj] += U[s, jj] * U[s, jj]
+            v[s] = vj
+            err -= vj * vj
+            index[i, s] = j
+            s += 1
+        count[i] = s
+        for t in range(s - 1, -1, -1):
+            acc = v[t]
+            for r in range(t + 1, s):
+                acc -= Lm[r, t] * z[r]
+            z[t] = acc / Lm[t, t]
+            value[i, t] = z[t]
+
+
+@numba.njit(cache=True)
+def solve_spd_dropping(A, b, out):  # pragma: no cover - compiled
+    """Solve ``A y = b`` for a small symmetric positive semi-definite ``A`` (m, m).
+
+    Cholesky factorisation that *drops* a variable whose pivot is at round-off level
+    (its atom lies in the span of the earlier ones, e.g. a duplicate atom): the dropped
+    variable gets 0 and the rest are the least-squares solution without it. ``A`` is
+    overwritten by the factor; ``out`` (m,) receives ``y``. Returns the number kept.
+    """
+    m = A.shape[0]
+    eps = np.finfo(A.dtype).eps
+    dropped = np.zeros(m, dtype=np.bool_)
+    kept = 0
+    for i in range(m):
+        d0 = A[i, i]
+        for c in range(i):
+            acc = A[i, c]
+            for t in range(c):
+                acc -= A[i, t] * A[c, t]
+            A[i, c] = 0.0 if dropped[c] else acc / A[c, c]
+        acc = d0
+        for t in range(i):
+            acc -= A[i, t] * A[i, t]
+        if acc <= 1e3 * eps * abs(d0) or d0 <= 0:
+            dropped[i] = True
+            for t in range(i):
+                A[i, t] = 0.0
+            A[i, i] = 1.0
+        else:
+            A[i, i] = np.sqrt(acc)
+            kept += 1
+    for i in range(m):  # forward: L y = b
+        if dropped[i]:
+            out[i] = 0.0
+            continue
+        acc = b[i]
+        for t in range(i):
+            acc -= A[i, t] * out[t]
+        out[i] = acc / A[i, i]
+    for i in range(m - 1, -1, -1):  # backward: Lᵀ y = y
+        if dropped[i]:
+            out[i] = 0.0
+            continue
+        acc = out[i]
+        for r in range(i + 1, m):
+            acc -= A[r, i] * out[r]
+        out[i] = acc / A[i, i]
+    return kept
+
+
+#: Rows per BLAS call in :func:`correlations`; a multiple of 48 so that every row falls
+#: in a full micro-tile of the usual GEMM kernels (tile heights 4, 8, 12, 16, 24).
+_BLOCK_ROWS = 384
+
+
+def correlation_blocks(X: np.ndarray, M: np.ndarray):
+    """Yield ``(start, stop, X[start:stop] @ M)`` block by block, row-invariantly.
+
+    BLAS libraries choose kernels and tile edges from the shape and memory alignment
+    of the whole call (OpenBLAS was seen to give other last bits for 1–3-row calls and
+    for rows on a tile edge), so a chunk coded in two pieces could differ in the last
+    bit from one call. Here every call has the same shape (``_BLOCK_ROWS`` rows, the
+    last block zero-padded) and reads an aligned copy, so a row's result depends on
+    that row alone. The extra cost is one copy of ``X``; a coder that consumes each
+    block at once also keeps the product in cache instead of memory.
+
+    Parameters
+    ----------
+    X : ndarray of shape (n_rows, d)
+    M : ndarray of shape (d, m), same dtype
+
+    Yields
+    ------
+    start, stop : int
+    block : ndarray of shape (stop - start, m)
+        Valid until the next block is produced.
+    """
+    n, d = X.shape
+    buf = np.zeros((_BLOCK_ROWS, d), dtype=X.dtype)
+    out = np.empty((_BLOCK_ROWS, M.shape[1]), dtype=X.dtype)
+    for start in range(0, n, _BLOCK_ROWS):  # loop over blocks of rows, not rows
+        stop = min(n, start + _BLOCK_ROWS)
+        buf[: stop - start] = X[start:stop]
+        buf[stop - start:] = 0
+        np.matmul(buf, M, out=out)
+        yield start, stop, out[: stop - start]
+
+
+def correlations(X: np.ndarray, M: np.ndarray) -> np.ndarray:
+    """``X @ M`` with each row's bytes independent of the other rows (see
+    :func:`correlation_blocks`).
+
+    Parameters
+    ----------
+    X : ndarray of shape (n_rows, d)
+    M : ndarray of shape (d, m), same dtype
+
+    Returns
+    -------
+    ndarray of shape (n_rows, m)
+    """
+    out = np.empty((X.shape[0], M.shape[1]), dtype=X.dtype)
+    for start, stop, block in correlation_blocks(X, M):
+        out[start:stop] = block
+    return out

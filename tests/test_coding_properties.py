@@ -1,0 +1,113 @@
+"""Properties every coder keeps: per-row results (chunking does not change a byte), the
+layout's invariants, finite output, bounded width; hypothesis explores shapes/dtypes."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from atomline.stages.coding import METHODS, code, code_width, fit_learned_encoder
+
+K, D = 24, 10
+OPTIONS = {
+    "mp": {"n_nonzero": 4},
+    "omp": {"n_nonzero": 4},
+    "ormp": {"n_nonzero": 4},
+    "cosamp": {"n_nonzero": 3},
+    "lars": {"lam": 0.3},
+    "ista": {"lam": 0.3},
+    "fista": {"lam": 0.3},
+    "threshold": {"alpha": 0.3},
+    "triangle": {},
+    "hard": {},
+    "block-omp": {"group_size": 3, "n_groups": 2},
+}
+
+
+def _atoms(rng, k, d, dtype=np.float64):
+    W = rng.standard_normal((k, d))
+    return (W / np.linalg.norm(W, axis=1, keepdims=True)).astype(dtype)
+
+
+@pytest.fixture(scope="module")
+def encoder():
+    rng = np.random.default_rng(1)
+    W = _atoms(np.random.default_rng(0), K, D)
+    return fit_learned_encoder(rng.standard_normal((200, D)), W, "fista", 3, lam=0.3, n_steps=30)
+
+
+def _options(method, encoder):
+    return {"encoder": encoder} if method == "learned" else OPTIONS[method]
+
+
+def test_every_method_is_covered():
+    assert set(OPTIONS) | {"learned"} == set(METHODS)
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+@pytest.mark.parametrize("method", sorted(METHODS))
+def test_coding_in_two_pieces_gives_identical_bytes(method, dtype, encoder):
+    # The design's chunk rule: results depend on each row only.
+    rng = np.random.default_rng(2)
+    W = _atoms(np.random.default_rng(0), K, D)
+    X = rng.standard_normal((37, D)).astype(dtype)
+    opts = _options(method, encoder)
+    whole = code(X, W, method, **opts)
+    parts = [code(X[:13], W, method, **opts), code(X[13:14], W, method, **opts),
+             code(X[14:], W, method, **opts)]
+    for name in ("index", "value", "count"):
+        joined = np.concatenate([getattr(p, name) for p in parts])
+        assert joined.dtype == getattr(whole, name).dtype
+        assert joined.tobytes() == getattr(whole, name).tobytes(), name
+    assert whole.value.dtype == dtype
+    assert whole.width == code_width(method, K, **opts)
+
+
+def _check_layout(c, width, n_rows):
+    assert c.index.shape == c.value.shape == (n_rows, width)
+    assert np.isfinite(c.value).all()
+    used = c.index >= 0
+    np.testing.assert_array_equal(used.sum(axis=1), c.count)
+    # Used slots come first, name distinct atoms in range; unused slots are empty.
+    np.testing.assert_array_equal(used, np.arange(width)[None, :] < c.count[:, None])
+    assert np.all(c.index[used] < c.n_atoms)
+    assert np.all(c.value[~used] == 0)
+    for row in c.index:
+        row = row[row >= 0]
+        assert len(set(row.tolist())) == row.size
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(seed=st.integers(0, 2**31 - 1),
+       k=st.integers(1, 30),
+       d=st.integers(1, 20),
+       n=st.integers(1, 12),
+       dtype=st.sampled_from([np.float32, np.float64]),
+       method=st.sampled_from(sorted(OPTIONS)),
+       duplicate=st.booleans(),
+       zero_rows=st.booleans(),
+       scale=st.sampled_from([1e-3, 1.0, 1e3]))
+def test_codes_are_finite_bounded_and_well_formed(seed, k, d, n, dtype, method, duplicate,
+                                                   zero_rows, scale):
+    rng = np.random.default_rng(seed)
+    W = _atoms(rng, k, d, dtype)
+    if duplicate and k >= 2:
+        W[k - 1] = W[0]  # an exact duplicate atom
+    X = (scale * rng.standard_normal((n, d))).astype(dtype)
+    if zero_rows:
+        X[:: 2] = 0
+    opts = dict(OPTIONS[method])
+    if method == "block-omp":
+        opts["group_size"] = 1 if k % 3 else 3
+    if method in ("lars", "ista", "fista", "threshold"):
+        key = "alpha" if method == "threshold" else "lam"
+        opts[key] = 0.3 * scale
+    c = code(X, W, method, **opts)
+    width = code_width(method, k, **opts)
+    _check_layout(c, width, n)
+    if "n_nonzero" in opts:
+        assert c.count.max() <= opts["n_nonzero"]
+    if zero_rows and method not in ("triangle", "hard"):
+        assert np.all(c.count[::2] == 0)
