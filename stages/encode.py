@@ -22,7 +22,7 @@ from prefect import task
 from prefect.cache_policies import NO_CACHE
 from threadpoolctl import threadpool_limits
 
-from .coding import code, code_width, gram
+from .coding import code, code_outputs, code_width, gram
 from .errors import BadChunk, FingerprintMismatch, InputError, problem
 from .prep import Normaliser, PatchGeometry
 from .workspace import BAD_CHUNK_CHOICES, Workspace, fingerprint_params, iter_row_chunks
@@ -89,7 +89,7 @@ def prepare_encode(
         "patches_per_record": P,
         "record_chunk_rows": int(arr.chunks[0]),
         "geometry": geometry.to_attrs(),
-        "n_atoms": int(stored.atoms.shape[0]),
+        "n_atoms": code_outputs(coder, stored.atoms.shape[0], **coder_options),
         "width": width,
     }
     attrs["fingerprint"] = fingerprint_params(
