@@ -175,3 +175,37 @@ def test_every_coder_runs_through_encode_and_pool(coders_ws, coder, options):
     feats = ws.output(pool.features_path(dict_id, "vib")).group["values"][:]
     assert feats.shape == (600, 2 * 2 * outputs) and np.isfinite(feats).all()
     assert (feats.max(axis=0) > 0).sum() > outputs // 4  # many atoms show up somewhere
+
+
+def test_learned_encoder_is_stored_with_its_dictionary_and_used_by_encode(coders_ws):
+    from atomline.stages.coding import LearnedEncoder, code
+    from atomline.stages.prep import Normaliser, PatchGeometry
+
+    ws, dict_id = coders_ws
+    made = train.train_encoder(ws, "vib", dict_id, name="fast", target="fista",
+                               target_options={"lam": 0.5}, sample_patches=1500,
+                               fit_options={"n_steps": 150})
+    info = made["info"]
+    assert info["relative_error_final"] < info["relative_error_initial"]
+    prepared = encode.prepare_encode(ws, "vib", dict_id, coder="learned",
+                                     coder_options={"encoder": "fast", "max_nonzero": 8}, overwrite=True)
+    assert prepared["width"] == 8
+    encode.encode_chunks(ws, "vib", dict_id, prepared["pending"][:1])
+    out = ws.output(encode.codes_path(dict_id, "vib"))
+    assert out.attrs["params"]["encoder_fingerprint"] == made["fingerprint"]
+    # Same codes as the kernel with the encoder rebuilt from the store, on the first chunk.
+    stored = ws.load_dictionary(dict_id)
+    attrs, arrays = ws.load_encoder(dict_id, "fast")
+    geo = PatchGeometry.from_attrs(stored.attrs["geometry"])
+    rows = geo.extract(np.asarray(ws.records("vib")[:100]))
+    patches = Normaliser.from_stored(stored.attrs["preprocessing"], stored.arrays).apply(rows)
+    direct = code(patches, stored.atoms.astype(np.float32), "learned",
+                  encoder=LearnedEncoder.from_stored(attrs["encoder"], arrays), max_nonzero=8)
+    n = patches.shape[0]
+    np.testing.assert_array_equal(out.group["count"][:n], direct.count)
+    np.testing.assert_array_equal(out.group["value"][:n], direct.value.astype(np.float32))
+    with pytest.raises(InputError, match="encoder"):
+        encode.prepare_encode(ws, "vib", dict_id, coder="learned", coder_options={}, overwrite=True)
+    with pytest.raises(NotFound):
+        encode.prepare_encode(ws, "vib", dict_id, coder="learned",
+                              coder_options={"encoder": "missing"}, overwrite=True)
