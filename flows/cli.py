@@ -123,6 +123,18 @@ def _parser() -> argparse.ArgumentParser:
     _fault_options(sp, bad_chunks=False)
     _runner_options(sp)
 
+    sp = command("train-encoder", _run_train_encoder, None,
+                 "train a learned fast encoder (unrolled ISTA) that imitates a coder, stored with the dictionary")
+    _ws_name(sp)
+    sp.add_argument("--dictionary", help="dictionary id (default: the promoted one)")
+    sp.add_argument("--encoder", default="learned", help="name to store it under (default: %(default)s)")
+    sp.add_argument("--target", default="fista", help="coder to imitate (default: %(default)s)")
+    sp.add_argument("--target-option", action="append", metavar="KEY=VALUE",
+                    help="an option of the target coder, repeatable (e.g. lam=0.5)")
+    sp.add_argument("--layers", type=int, default=3, help="thresholding layers (default: %(default)s)")
+    sp.add_argument("--sample", type=int, default=5000, help="training patches (default: %(default)s)")
+    sp.add_argument("--seed", type=int, default=0, help="seed (default: %(default)s)")
+
     sp = command("encode", _run_encode, _describe_stage, "sparse-code every chunk of data/NAME (resumes)")
     _ws_name(sp)
     sp.add_argument("--dictionary", help="dictionary id (default: the promoted one)")
@@ -357,6 +369,17 @@ def _run_link(args):
 
     ws = Workspace.open(args.workspace, create=True)
     return ws.link_records(args.name, args.url, args.path, overwrite=args.overwrite)
+
+
+def _run_train_encoder(args):
+    from atomline.flows.pipeline import _promoted
+    from atomline.stages.train import train_encoder
+
+    with _progress(args.workspace, args.name, (), args.json, status="training an encoder"):
+        return train_encoder(args.workspace, args.name, args.dictionary or _promoted(args.workspace),
+                             name=args.encoder, target=args.target,
+                             target_options=_key_values(args.target_option), n_layers=args.layers,
+                             sample_patches=args.sample, seed=args.seed)
 
 
 def _run_train(args):

@@ -22,7 +22,7 @@ from prefect import task
 from prefect.cache_policies import NO_CACHE
 from threadpoolctl import threadpool_limits
 
-from .coding import code, code_width, gram
+from .coding import code, code_outputs, code_width, gram
 from .errors import BadChunk, FingerprintMismatch, InputError, problem
 from .prep import Normaliser, PatchGeometry
 from .workspace import BAD_CHUNK_CHOICES, Workspace, fingerprint_params, iter_row_chunks
@@ -77,9 +77,12 @@ def prepare_encode(
         coder = stored.attrs["coder"]
         coder_options = stored.attrs["coder_options"] if coder_options is None else coder_options
     coder_options = dict(coder_options or {})
-    width = code_width(coder, stored.atoms.shape[0], **coder_options)
+    resolved = _resolve_options(ws, dict_id, coder, coder_options)
+    width = code_width(coder, stored.atoms.shape[0], **resolved)
     P = geometry.patches_per_record
     params = {"coder": coder, "coder_options": coder_options}
+    if coder == "learned":  # the codes depend on the stored encoder's content too
+        params["encoder_fingerprint"] = ws.load_encoder(dict_id, coder_options["encoder"])[0]["fingerprint"]
     attrs = {
         "records": records,
         "dict_id": dict_id,
@@ -89,7 +92,7 @@ def prepare_encode(
         "patches_per_record": P,
         "record_chunk_rows": int(arr.chunks[0]),
         "geometry": geometry.to_attrs(),
-        "n_atoms": int(stored.atoms.shape[0]),
+        "n_atoms": code_outputs(coder, stored.atoms.shape[0], **resolved),
         "width": width,
     }
     # The records' content is not in the fingerprint but in ``covers``: codes made before
@@ -168,7 +171,8 @@ def encode_chunks(
                                stored.fingerprint, "Run prepare_encode with overwrite=True."))
     geometry = PatchGeometry.from_attrs(attrs["geometry"])
     normaliser = Normaliser.from_stored(stored.attrs["preprocessing"], stored.arrays)
-    coder, options = attrs["params"]["coder"], dict(attrs["params"]["coder_options"])
+    coder = attrs["params"]["coder"]
+    options = _resolve_options(ws, dict_id, coder, dict(attrs["params"]["coder_options"]))
     atoms = stored.atoms.astype(arr.dtype)
     if coder == "omp":
         options.setdefault("gram", gram(atoms))  # the same for every chunk: compute once
@@ -199,6 +203,20 @@ def encode_chunks(
             n_records += block.shape[0]
     return {"encoded": encoded, "skipped": skipped, "bad": bad, "records": n_records,
             "patches": n_records * P, "seconds": time.perf_counter() - start}
+
+
+def _resolve_options(ws: Workspace, dict_id: str, coder: str, options: dict) -> dict:
+    """Options as the coder takes them: a learned encoder is named, then loaded."""
+    if coder != "learned":
+        return options
+    from .coding import LearnedEncoder
+
+    name = options.get("encoder")
+    if not isinstance(name, str):
+        raise InputError(problem("coder 'learned'", "option encoder=<name of a stored encoder>",
+                                 repr(name), "Train one with train_encoder (atomline train-encoder)."))
+    attrs, arrays = ws.load_encoder(dict_id, name)
+    return dict(options, encoder=LearnedEncoder.from_stored(attrs["encoder"], arrays))
 
 
 def _pad(a: np.ndarray, width: int, fill: float) -> np.ndarray:

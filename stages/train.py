@@ -23,7 +23,7 @@ from .learning import METHODS, learn
 from .prep import Normaliser, PatchGeometry
 from .workspace import Workspace, fingerprint_params, iter_row_chunks
 
-__all__ = ["train_dictionary", "train_task"]
+__all__ = ["train_dictionary", "train_task", "train_encoder", "train_encoder_task"]
 
 
 def train_dictionary(
@@ -185,5 +185,66 @@ def _sample_patches(arr: Any, geometry: PatchGeometry, n_patches: int, seed: int
     return patches[keep].astype(np.float64)
 
 
+def train_encoder(
+    workspace: Workspace | str,
+    records: str,
+    dict_id: str,
+    *,
+    name: str = "learned",
+    target: str = "fista",
+    target_options: dict | None = None,
+    n_layers: int = 3,
+    sample_patches: int = 5_000,
+    seed: int = 0,
+    fit_options: dict | None = None,
+) -> dict:
+    """Train a learned fast encoder (unrolled ISTA) for a stored dictionary.
+
+    The encoder learns to reproduce the ``target`` coder's codes on a sample of the
+    records' patches, preprocessed like the dictionary's training rows, and is stored
+    beside the dictionary. The encode stage then uses it with ``coder="learned"`` and
+    ``coder_options={"encoder": name}``.
+
+    Parameters
+    ----------
+    workspace : Workspace or str
+    records : str
+    dict_id : str
+    name : str
+        Name of the encoder under ``dictionaries/<dict_id>/encoders``.
+    target : str
+        The coder to imitate (e.g. ``"fista"``, ``"omp"``).
+    target_options : dict, optional
+        Its options (e.g. ``{"lam": 0.5}``).
+    n_layers : int
+    sample_patches : int
+    seed : int
+    fit_options : dict, optional
+        Training options of :func:`~atomline.stages.coding.fit_learned_encoder`.
+
+    Returns
+    -------
+    dict
+        ``{"dict_id", "name", "fingerprint", "target", "n_layers", "info"}``
+    """
+    from .coding import fit_learned_encoder
+
+    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    arr = ws.records(records)
+    stored = ws.load_dictionary(dict_id)
+    geometry = PatchGeometry.from_attrs(stored.attrs["geometry"])
+    normaliser = Normaliser.from_stored(stored.attrs["preprocessing"], stored.arrays)
+    sample = normaliser.apply(_sample_patches(arr, geometry, sample_patches, seed,
+                                              read=lambda c: ws.read_chunk(records, c, arr)))
+    encoder = fit_learned_encoder(sample, stored.atoms, target, n_layers, seed=seed,
+                                  **(fit_options or {}), **(target_options or {}))
+    fingerprint = ws.save_encoder(dict_id, name, encoder.arrays(), {"encoder": encoder.attrs()})
+    return {"dict_id": dict_id, "name": name, "fingerprint": fingerprint, "target": target,
+            "n_layers": n_layers, "info": encoder.attrs().get("info")}
+
+
 #: The train stage as a Prefect task (no result caching: arguments are names only).
 train_task = task(train_dictionary, name="train-dictionary", cache_policy=NO_CACHE)
+
+#: Encoder training as a Prefect task.
+train_encoder_task = task(train_encoder, name="train-encoder", cache_policy=NO_CACHE)

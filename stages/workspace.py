@@ -873,6 +873,54 @@ class Workspace:
                                       f"shape {atoms.shape}", "The dictionary was altered; train it again."))
         return StoredDictionary(dict_id, atoms, attrs, arrays)
 
+    def save_encoder(self, dict_id: str, name: str, arrays: dict[str, np.ndarray],
+                     attrs: dict) -> str:
+        """Store a learned fast encoder beside the dictionary it was trained for.
+
+        It lives under ``dictionaries/<dict_id>/encoders/<name>`` (arrays, then attributes,
+        ``complete`` last) and is never rewritten.
+
+        Parameters
+        ----------
+        dict_id : str
+            A complete dictionary.
+        name : str
+        arrays : dict of str to ndarray
+            The encoder's matrices and thresholds.
+        attrs : dict
+            Plain JSON describing it; a ``fingerprint`` of the arrays is added.
+
+        Returns
+        -------
+        str
+            The encoder's fingerprint.
+        """
+        self.load_dictionary(dict_id)
+        path = f"dictionaries/{dict_id}/encoders/{_check_name(name, 'encoder name')}"
+        self._refuse_existing(path, False)
+        g = self.root.require_group(f"dictionaries/{dict_id}/encoders").create_group(name)
+        digest = hashlib.sha256()
+        for key in sorted(arrays):
+            value = np.ascontiguousarray(arrays[key])
+            g.create_array(_check_name(key, "array name"), data=value)
+            digest.update(key.encode() + value.tobytes())
+        fingerprint = digest.hexdigest()[:16]
+        g.attrs.update(_plain(dict(attrs, fingerprint=fingerprint, created=_now(),
+                                   arrays=sorted(arrays))))
+        g.attrs["complete"] = True
+        return fingerprint
+
+    def load_encoder(self, dict_id: str, name: str) -> tuple[dict, dict[str, np.ndarray]]:
+        """The attributes and arrays of a stored encoder (see :meth:`save_encoder`)."""
+        path = f"dictionaries/{_check_name(dict_id, 'dictionary id')}/encoders/{_check_name(name, 'encoder name')}"
+        g = self._node(path, "encoder")
+        attrs = dict(g.attrs)
+        if attrs.get("complete") is not True:
+            raise NotFound(problem(path, "a complete encoder", "one whose writing did not finish",
+                                   "Train the encoder again."))
+        _check_group_members(g, path)
+        return attrs, {k: np.asarray(g[k][:]) for k in attrs["arrays"]}
+
     def save_checkpoint(self, dict_id: str, state: dict) -> None:
         """Keep a learner's state while ``dictionaries/<dict_id>`` is being trained.
 

@@ -139,3 +139,73 @@ def test_evaluations_are_appended(demo_small, trained):
     conf = ws.evaluation_arrays(first["run_id"])["confusion_features"]
     assert conf.sum() == first["n_rows"]
     assert np.trace(conf) / conf.sum() == pytest.approx(first["features"]["accuracy"])
+
+
+@pytest.fixture(scope="module")
+def coders_ws(demo_small):
+    X, y = demo_small
+    ws = _workspace("memory://stages-coders", X, y, chunk_rows=100)
+    return ws, train.train_dictionary(ws, "vib", **TRAIN)["dict_id"]
+
+
+CODERS = [
+    ("omp", {"n_nonzero": 4}), ("mp", {"n_nonzero": 4}), ("ormp", {"n_nonzero": 4}),
+    ("cosamp", {"n_nonzero": 4}), ("lars", {"lam": 0.5, "max_nonzero": 8}),
+    ("fista", {"lam": 0.5, "max_nonzero": 8}), ("ista", {"lam": 0.5, "max_nonzero": 8}),
+    ("threshold", {"alpha": 0.5}), ("threshold", {"alpha": 0.5, "split_sign": True}),
+    ("triangle", {}), ("hard", {}), ("block-omp", {"group_size": 4, "n_groups": 2}),
+]
+
+
+@pytest.mark.parametrize("coder, options", CODERS, ids=[f"{c}-{len(o)}{'s' if o.get('split_sign') else ''}" for c, o in CODERS])
+def test_every_coder_runs_through_encode_and_pool(coders_ws, coder, options):
+    ws, dict_id = coders_ws
+    k = ws.load_dictionary(dict_id).atoms.shape[0]
+    prepared = encode.prepare_encode(ws, "vib", dict_id, coder=coder, coder_options=options,
+                                     overwrite=True)
+    encode.encode_chunks(ws, "vib", dict_id, prepared["pending"])
+    codes = ws.output(encode.codes_path(dict_id, "vib"))
+    outputs = 2 * k if options.get("split_sign") else k
+    assert codes.attrs["n_atoms"] == outputs and codes.attrs["params"]["coder"] == coder
+    count, index = codes.group["count"][:], codes.group["index"][:]
+    assert count.max() <= prepared["width"] and count.mean() > 0
+    assert index.max() < outputs
+    pooled = pool.prepare_pool(ws, "vib", dict_id, regions=2, overwrite=True)
+    pool.pool_chunks(ws, "vib", dict_id, pooled["pending"])
+    feats = ws.output(pool.features_path(dict_id, "vib")).group["values"][:]
+    assert feats.shape == (600, 2 * 2 * outputs) and np.isfinite(feats).all()
+    assert (feats.max(axis=0) > 0).sum() > outputs // 4  # many atoms show up somewhere
+
+
+def test_learned_encoder_is_stored_with_its_dictionary_and_used_by_encode(coders_ws):
+    from atomline.stages.coding import LearnedEncoder, code
+    from atomline.stages.prep import Normaliser, PatchGeometry
+
+    ws, dict_id = coders_ws
+    made = train.train_encoder(ws, "vib", dict_id, name="fast", target="fista",
+                               target_options={"lam": 0.5}, sample_patches=1500,
+                               fit_options={"n_steps": 150})
+    info = made["info"]
+    assert info["relative_error_final"] < info["relative_error_initial"]
+    prepared = encode.prepare_encode(ws, "vib", dict_id, coder="learned",
+                                     coder_options={"encoder": "fast", "max_nonzero": 8}, overwrite=True)
+    assert prepared["width"] == 8
+    encode.encode_chunks(ws, "vib", dict_id, prepared["pending"][:1])
+    out = ws.output(encode.codes_path(dict_id, "vib"))
+    assert out.attrs["params"]["encoder_fingerprint"] == made["fingerprint"]
+    # Same codes as the kernel with the encoder rebuilt from the store, on the first chunk.
+    stored = ws.load_dictionary(dict_id)
+    attrs, arrays = ws.load_encoder(dict_id, "fast")
+    geo = PatchGeometry.from_attrs(stored.attrs["geometry"])
+    rows = geo.extract(np.asarray(ws.records("vib")[:100]))
+    patches = Normaliser.from_stored(stored.attrs["preprocessing"], stored.arrays).apply(rows)
+    direct = code(patches, stored.atoms.astype(np.float32), "learned",
+                  encoder=LearnedEncoder.from_stored(attrs["encoder"], arrays), max_nonzero=8)
+    n = patches.shape[0]
+    np.testing.assert_array_equal(out.group["count"][:n], direct.count)
+    np.testing.assert_array_equal(out.group["value"][:n], direct.value.astype(np.float32))
+    with pytest.raises(InputError, match="encoder"):
+        encode.prepare_encode(ws, "vib", dict_id, coder="learned", coder_options={}, overwrite=True)
+    with pytest.raises(NotFound):
+        encode.prepare_encode(ws, "vib", dict_id, coder="learned",
+                              coder_options={"encoder": "missing"}, overwrite=True)

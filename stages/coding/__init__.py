@@ -104,6 +104,7 @@ from .triangle import triangle, triangle_width
 __all__ = [
     "code",
     "code_width",
+    "code_outputs",
     "METHODS",
     "SparseCodes",
     "gram",
@@ -216,3 +217,23 @@ def code_width(method: str, n_atoms: int, **options: Any) -> int:
         return int(_WIDTHS[method](int(n_atoms), **options))
     except TypeError as exc:
         raise _bad_options(method, exc) from exc
+
+
+def code_outputs(method: str, n_atoms: int, **options: Any) -> int:
+    """How many code outputs (columns of ``.dense()``) ``method`` gives for ``k`` atoms.
+
+    ``2k`` for split-sign thresholding (each atom's positive and negative parts are
+    separate outputs), ``k`` for every other coder. Pooling sizes its features with it.
+
+    Parameters
+    ----------
+    method : str
+    n_atoms : int
+    **options
+
+    Returns
+    -------
+    int
+    """
+    code_width(method, n_atoms, **options)  # validates the method and options
+    return 2 * int(n_atoms) if method == "threshold" and options.get("split_sign") else int(n_atoms)
