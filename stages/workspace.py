@@ -593,7 +593,9 @@ class Workspace:
                                      "Append to the linked array where it lives, then link it again."))
         if isinstance(source, (str, os.PathLike)):
             source = np.load(os.fspath(source), mmap_mode="r", allow_pickle=False)
-        z = node
+        # Store every chunk, zeros included, as add_records does: a missing chunk object
+        # then always means a lost chunk (see read_chunk).
+        z = node.with_config({"write_empty_chunks": True})
         where = f"rows appended to {name!r}"
         check_records(source, where)
         if tuple(source.shape[1:]) != tuple(z.shape[1:]) or np.dtype(source.dtype) != z.dtype:

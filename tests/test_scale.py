@@ -373,3 +373,13 @@ def test_cli_append_records(tmp_path, capsys):
     ws = Workspace.open(url)
     np.testing.assert_array_equal(ws.records("r")[:], X)
     np.testing.assert_array_equal(ws.labels("r"), y)
+
+
+def test_appended_zero_rows_are_stored_chunks(memory_url):
+    # A chunk of zeros must be stored like any other: the workspace treats a missing chunk
+    # object as a lost chunk.
+    ws = Workspace.open(memory_url, create=True)
+    ws.add_records("r", np.ones((10, 4), np.float32), chunk_rows=5)
+    ws.append_records("r", np.zeros((10, 4), np.float32))
+    for chunk in range(4):
+        assert ws.read_chunk("r", chunk).shape == (5, 4)
