@@ -111,3 +111,17 @@ def test_codes_are_finite_bounded_and_well_formed(seed, k, d, n, dtype, method, 
         assert c.count.max() <= opts["n_nonzero"]
     if zero_rows and method not in ("triangle", "hard"):
         assert np.all(c.count[::2] == 0)
+
+
+def test_compiled_kernels_are_not_cached_beside_the_installed_source(tmp_path):
+    # A cache written into an installed package's folder outlives `pip uninstall` and turns
+    # the folder into a namespace package that shadows a later editable install.
+    import subprocess
+    import sys
+
+    env = {k: v for k, v in __import__("os").environ.items() if k != "NUMBA_CACHE_DIR"}
+    env["XDG_CACHE_HOME"] = str(tmp_path)
+    out = subprocess.run([sys.executable, "-c",
+                          "import numba, atomline.stages.coding as c; print(numba.config.CACHE_DIR)"],
+                         env=env, capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == str(tmp_path / "atomline" / "numba")

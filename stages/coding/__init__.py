@@ -73,7 +73,7 @@ mean number of nonzeros; :func:`fit_learned_encoder` trains the ``learned`` code
 Implementation notes
 --------------------
 Per-row algorithms run inside numba-compiled kernels (``cache=True``: compiled once per
-machine, about a second per kernel and dtype, then loaded from ``__pycache__``), single
+machine, about a second per kernel and dtype, then loaded from the user cache, see ``_numba_cache``), single
 threaded so that worker processes × threads stay within the cores. The one product
 with the dictionary goes through :func:`._common.correlations`, which calls BLAS with a
 fixed block shape so that a row's result never depends on the other rows of its chunk.
@@ -86,7 +86,12 @@ from typing import Any, Callable
 import numpy as np
 
 from ..errors import InputError, problem
-from ._common import SparseCodes, check_problem, gram
+from ._numba_cache import use_user_cache_dir
+
+# Before any kernel is decorated: the decorator picks the cache location.
+use_user_cache_dir()
+
+from ._common import SparseCodes, check_problem, gram  # noqa: E402
 from .block_omp import block_omp, block_omp_width
 from .cosamp import cosamp, cosamp_width
 from .fista import fista
