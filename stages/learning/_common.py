@@ -460,3 +460,26 @@ def too_few_rows(n_atoms: int) -> None:
     """Raise the error for a training sample smaller than the dictionary."""
     raise InputError(problem("training rows", f"at least n_atoms = {n_atoms} rows", "fewer",
                              "Train on a larger sample or ask for fewer atoms."))
+
+
+def atoms_from_rows(rows: np.ndarray, n_atoms: int, rng: np.random.Generator) -> np.ndarray:
+    """The learners' usual start: ``n_atoms`` distinct rows drawn with ``rng``, unit-norm.
+
+    Parameters
+    ----------
+    rows : ndarray of shape (n_rows, d)
+    n_atoms : int
+    rng : numpy.random.Generator
+
+    Returns
+    -------
+    ndarray of shape (n_atoms, d)
+
+    Raises
+    ------
+    InputError
+        Fewer rows than atoms.
+    """
+    if rows.shape[0] < n_atoms:
+        too_few_rows(n_atoms)
+    return unit_rows(rows[rng.choice(rows.shape[0], n_atoms, replace=False)])

@@ -35,6 +35,7 @@ from ._common import (
     CheckpointClock,
     LearnedDictionary,
     as_rows,
+    atoms_from_rows,
     atom_usage,
     bcd_sweep,
     check_resume,
@@ -42,7 +43,6 @@ from ._common import (
     coherence,
     default_coder_options,
     replace_atoms,
-    too_few_rows,
     unit_rows,
 )
 
@@ -280,8 +280,4 @@ def _first_rows(chunks: _Chunks, n_atoms: int, seed: int) -> np.ndarray:
         have += pool[-1].shape[0]
         if have >= n_atoms:
             break
-    if have < n_atoms:
-        too_few_rows(n_atoms)
-    rows = np.concatenate(pool)
-    rng = np.random.default_rng(seed)
-    return unit_rows(rows[rng.choice(rows.shape[0], n_atoms, replace=False)])
+    return atoms_from_rows(np.concatenate(pool), n_atoms, np.random.default_rng(seed))

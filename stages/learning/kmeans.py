@@ -28,6 +28,7 @@ from ._common import (
     CheckpointClock,
     LearnedDictionary,
     as_rows,
+    atoms_from_rows,
     check_forget,
     check_resume,
     coherence,
@@ -125,10 +126,7 @@ def kmeans(
         batches_seen, t = int(resume["batches_seen"]), int(resume["t"])
         n_replaced = int(resume["n_replaced"])
     if isinstance(source, np.ndarray) and W is None:
-        rows = as_rows(source)
-        if rows.shape[0] < n_atoms:
-            too_few_rows(n_atoms)
-        W = unit_rows(rows[rng.choice(rows.shape[0], n_atoms, replace=False)])
+        W = atoms_from_rows(as_rows(source), n_atoms, rng)
 
     def state() -> dict:
         return {"method": "kmeans", "atoms": W.copy(), "sums": S.copy(),
@@ -145,7 +143,7 @@ def kmeans(
             pool = np.concatenate(pending)
             if pool.shape[0] < n_atoms:
                 continue
-            W = unit_rows(pool[rng.choice(pool.shape[0], n_atoms, replace=False)])
+            W = atoms_from_rows(pool, n_atoms, rng)
             batch, pending = pool, []
         if S is None:
             S, counts = np.zeros_like(W), np.zeros(n_atoms)

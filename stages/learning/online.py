@@ -47,6 +47,7 @@ from ._common import (
     CheckpointClock,
     LearnedDictionary,
     as_rows,
+    atoms_from_rows,
     atom_usage,
     bcd_sweep,
     check_resume,
@@ -159,10 +160,7 @@ def online(
         n_replaced = int(resume["n_replaced"])
     if isinstance(source, np.ndarray) and W is None:
         # In memory: start from distinct rows drawn over the whole array.
-        rows = as_rows(source)
-        if rows.shape[0] < n_atoms:
-            too_few_rows(n_atoms)
-        W = unit_rows(rows[rng.choice(rows.shape[0], n_atoms, replace=False)])
+        W = atoms_from_rows(as_rows(source), n_atoms, rng)
 
     def state() -> dict:
         return {"method": "online", "atoms": W.copy(), "A": A.copy(), "B": B.copy(),
@@ -180,7 +178,7 @@ def online(
             pool = np.concatenate(pending)
             if pool.shape[0] < n_atoms:
                 continue
-            W = unit_rows(pool[rng.choice(pool.shape[0], n_atoms, replace=False)])
+            W = atoms_from_rows(pool, n_atoms, rng)
             batch, pending = pool, []
         if A is None:
             A, B = np.zeros((n_atoms, n_atoms)), np.zeros((n_atoms, W.shape[1]))

@@ -32,6 +32,7 @@ from ._common import (
     CheckpointClock,
     LearnedDictionary,
     as_rows,
+    atoms_from_rows,
     atom_usage,
     check_resume,
     coded,
@@ -131,10 +132,7 @@ def _run(
         batches_seen, t = int(resume["batches_seen"]), int(resume["t"])
         n_replaced = int(resume["n_replaced"])
     if isinstance(source, np.ndarray) and W is None:
-        rows = as_rows(source)
-        if rows.shape[0] < n_atoms:
-            too_few_rows(n_atoms)
-        W = unit_rows(rows[rng.choice(rows.shape[0], n_atoms, replace=False)])
+        W = atoms_from_rows(as_rows(source), n_atoms, rng)
         avg = W.copy()
 
     def state() -> dict:
@@ -152,7 +150,7 @@ def _run(
             pool = np.concatenate(pending)
             if pool.shape[0] < n_atoms:
                 continue
-            W = unit_rows(pool[rng.choice(pool.shape[0], n_atoms, replace=False)])
+            W = atoms_from_rows(pool, n_atoms, rng)
             avg, batch, pending = W.copy(), pool, []
         if usage is None:
             usage = np.zeros(n_atoms, dtype=np.int64)
