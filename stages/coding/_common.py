@@ -25,6 +25,8 @@ __all__ = [
     "nonnegative_float",
     "pack_dense",
     "as_dense_init",
+    "gram_and_correlations",
+    "empty_codes",
 ]
 
 
@@ -268,9 +270,7 @@ def pack_dense(dense: np.ndarray, width: int) -> SparseCodes:
         Shape (n_rows, width).
     """
     n, k = dense.shape
-    index = np.full((n, width), -1, dtype=np.int32)
-    value = np.zeros((n, width), dtype=dense.dtype)
-    count = np.zeros(n, dtype=np.int32)
+    index, value, count = empty_codes(n, width, dense.dtype)
     _pack_rows(dense, index, value, count)
     return SparseCodes(index, value, count, k)
 
@@ -591,3 +591,39 @@ def correlations(X: np.ndarray, M: np.ndarray) -> np.ndarray:
     for start, stop, block in correlation_blocks(X, M):
         out[start:stop] = block
     return out
+
+
+def gram_and_correlations(
+    X: np.ndarray, atoms: np.ndarray, gram_matrix: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray]:
+    """What every Gram-domain coder starts from.
+
+    Parameters
+    ----------
+    X : ndarray of shape (n_rows, d)
+    atoms : ndarray of shape (k, d), same dtype
+    gram_matrix : ndarray of shape (k, k), optional
+        The caller's ``atoms @ atoms.T`` (reused across chunks), cast to ``X``'s dtype.
+
+    Returns
+    -------
+    G : ndarray of shape (k, k)
+    C : ndarray of shape (n_rows, k)
+        ``X @ atoms.T``, the floor product, through the row-invariant
+        :func:`correlations`.
+    """
+    G = gram(atoms) if gram_matrix is None else np.ascontiguousarray(gram_matrix, dtype=X.dtype)
+    return G, correlations(X, atoms.T)
+
+
+def empty_codes(n: int, width: int, dtype: np.dtype) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Output arrays of the fixed-width layout, every slot unused.
+
+    Returns
+    -------
+    index : ndarray of shape (n, width), int32, all ``-1``
+    value : ndarray of shape (n, width), ``dtype``, all ``0``
+    count : ndarray of shape (n,), int32, all ``0``
+    """
+    return (np.full((n, width), -1, dtype=np.int32), np.zeros((n, width), dtype=dtype),
+            np.zeros(n, dtype=np.int32))

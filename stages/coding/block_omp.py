@@ -15,7 +15,8 @@ import numba
 import numpy as np
 
 from ..errors import InputError, problem
-from ._common import SparseCodes, append_atom, correlations, nonnegative_float, positive_int
+from ._common import (SparseCodes, append_atom, empty_codes, gram_and_correlations,
+                      nonnegative_float, positive_int)
 
 __all__ = ["block_omp", "block_omp_width"]
 
@@ -55,13 +56,10 @@ def block_omp(
     k = atoms.shape[0]
     width = block_omp_width(k, group_size=group_size, n_groups=n_groups)
     tol = 0.0 if tol is None else nonnegative_float("tol", tol)
-    G = atoms @ atoms.T if gram is None else np.ascontiguousarray(gram, dtype=X.dtype)
-    C = correlations(X, atoms.T)
+    G, C = gram_and_correlations(X, atoms, gram)  # C: the floor product
     xnorm = np.einsum("ij,ij->i", X, X)
     n = X.shape[0]
-    index = np.full((n, width), -1, dtype=np.int32)
-    value = np.zeros((n, width), dtype=X.dtype)
-    count = np.zeros(n, dtype=np.int32)
+    index, value, count = empty_codes(n, width, X.dtype)
     _block_rows(C, G, xnorm, X.dtype.type(tol), int(group_size), index, value, count)
     return SparseCodes(index, value, count, k)
 

@@ -15,7 +15,8 @@ import numba
 import numpy as np
 
 from ._common import (
-    SparseCodes, correlations, greedy_options, positive_int, select_largest, solve_spd_dropping,
+    SparseCodes, empty_codes, gram_and_correlations, greedy_options, positive_int, select_largest,
+    solve_spd_dropping,
 )
 
 __all__ = ["cosamp", "cosamp_width"]
@@ -53,13 +54,10 @@ def cosamp(
     k = atoms.shape[0]
     S, tol = greedy_options(k, n_nonzero, tol)
     max_iter = positive_int("max_iter", max_iter)
-    G = atoms @ atoms.T if gram is None else np.ascontiguousarray(gram, dtype=X.dtype)
-    C = correlations(X, atoms.T)
+    G, C = gram_and_correlations(X, atoms, gram)  # C: the floor product
     xnorm = np.einsum("ij,ij->i", X, X)
     n = X.shape[0]
-    index = np.full((n, S), -1, dtype=np.int32)
-    value = np.zeros((n, S), dtype=X.dtype)
-    count = np.zeros(n, dtype=np.int32)
+    index, value, count = empty_codes(n, S, X.dtype)
     _cosamp_rows(C, G, xnorm, X.dtype.type(tol), max_iter, index, value, count)
     return SparseCodes(index, value, count, k)
 

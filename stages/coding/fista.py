@@ -19,8 +19,8 @@ import numba
 import numpy as np
 
 from ._common import (
-    SparseCodes, as_dense_init, correlations, lipschitz, nonnegative_float, pack_row,
-    positive_int, soft,
+    SparseCodes, as_dense_init, empty_codes, gram_and_correlations, lipschitz, nonnegative_float,
+    pack_row, positive_int, soft,
 )
 from .lars import lasso_width
 
@@ -81,12 +81,9 @@ def proximal_gradient(X, atoms, *, lam, positive, init, max_iter, gap_tol, max_n
     gap_tol = nonnegative_float("gap_tol", gap_tol)
     width = lasso_width(k, max_nonzero=max_nonzero)
     Z0 = as_dense_init(init, n, k, X.dtype)
-    G = atoms @ atoms.T if gram is None else np.ascontiguousarray(gram, dtype=X.dtype)
-    C = correlations(X, atoms.T)
+    G, C = gram_and_correlations(X, atoms, gram)  # C: the floor product
     xnorm = np.einsum("ij,ij->i", X, X)
-    index = np.full((n, width), -1, dtype=np.int32)
-    value = np.zeros((n, width), dtype=X.dtype)
-    count = np.zeros(n, dtype=np.int32)
+    index, value, count = empty_codes(n, width, X.dtype)
     has_init = Z0 is not None
     Z0 = np.zeros((1, k), dtype=X.dtype) if Z0 is None else Z0
     _prox_grad_rows(C, G, xnorm, Z0, has_init, dtype(lam), dtype(lipschitz(atoms)),

@@ -21,7 +21,8 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from ._common import SparseCodes, correlations, nonnegative_float, positive_int
+from ._common import (SparseCodes, empty_codes, gram_and_correlations, nonnegative_float,
+                      positive_int)
 
 __all__ = ["lars", "lasso_width"]
 
@@ -58,12 +59,9 @@ def lars(
     k, d = atoms.shape
     lam = nonnegative_float("lam", lam)
     width = lasso_width(k, max_nonzero=max_nonzero)
-    G = atoms @ atoms.T if gram is None else np.ascontiguousarray(gram, dtype=X.dtype)
-    C = correlations(X, atoms.T)
+    G, C = gram_and_correlations(X, atoms, gram)  # C: the floor product
     n = X.shape[0]
-    index = np.full((n, width), -1, dtype=np.int32)
-    value = np.zeros((n, width), dtype=X.dtype)
-    count = np.zeros(n, dtype=np.int32)
+    index, value, count = empty_codes(n, width, X.dtype)
     cap = min(width, d, k)  # at most d atoms can be linearly independent
     _lars_rows(C, G, X.dtype.type(lam), bool(positive), cap, index, value, count)
     return SparseCodes(index, value, count, k)

@@ -12,7 +12,8 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from ._common import SparseCodes, correlations, greedy_options, positive_int
+from ._common import (SparseCodes, empty_codes, gram_and_correlations, greedy_options,
+                      positive_int)
 
 __all__ = ["mp", "mp_width"]
 
@@ -50,13 +51,10 @@ def mp(
     k = atoms.shape[0]
     S, tol = greedy_options(k, n_nonzero, tol)
     steps = 2 * S if max_steps is None else positive_int("max_steps", max_steps)
-    G = atoms @ atoms.T if gram is None else np.ascontiguousarray(gram, dtype=X.dtype)
-    C = correlations(X, atoms.T)
+    G, C = gram_and_correlations(X, atoms, gram)  # C: the floor product
     xnorm = np.einsum("ij,ij->i", X, X)
     n = X.shape[0]
-    index = np.full((n, S), -1, dtype=np.int32)
-    value = np.zeros((n, S), dtype=X.dtype)
-    count = np.zeros(n, dtype=np.int32)
+    index, value, count = empty_codes(n, S, X.dtype)
     _mp_rows(C, G, xnorm, X.dtype.type(tol), steps, index, value, count)
     return SparseCodes(index, value, count, k)
 

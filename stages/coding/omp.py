@@ -13,7 +13,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from ._common import SparseCodes, correlations, greedy_options, orthogonal_pursuit
+from ._common import (SparseCodes, empty_codes, gram_and_correlations, greedy_options,
+                      orthogonal_pursuit)
 
 __all__ = ["omp", "omp_width"]
 
@@ -59,12 +60,9 @@ def _pursue(X, atoms, n_nonzero, tol, gram, order_recursive: bool) -> SparseCode
     """Shared driver of OMP and ORMP: the floor product, then the compiled kernel."""
     k = atoms.shape[0]
     S, tol = greedy_options(k, n_nonzero, tol)
-    G = atoms @ atoms.T if gram is None else np.ascontiguousarray(gram, dtype=X.dtype)
-    C = correlations(X, atoms.T)  # (n, k): the floor product
+    G, C = gram_and_correlations(X, atoms, gram)  # C: the floor product
     xnorm = np.einsum("ij,ij->i", X, X)
     n = X.shape[0]
-    index = np.full((n, S), -1, dtype=np.int32)
-    value = np.zeros((n, S), dtype=X.dtype)
-    count = np.zeros(n, dtype=np.int32)
+    index, value, count = empty_codes(n, S, X.dtype)
     orthogonal_pursuit(C, G, xnorm, X.dtype.type(tol), order_recursive, index, value, count)
     return SparseCodes(index, value, count, k)
