@@ -125,3 +125,24 @@ def test_compiled_kernels_are_not_cached_beside_the_installed_source(tmp_path):
                           "import numba, atomline.stages.coding as c; print(numba.config.CACHE_DIR)"],
                          env=env, capture_output=True, text=True, check=True)
     assert out.stdout.strip() == str(tmp_path / "atomline" / "numba")
+
+
+def test_every_compiled_kernel_releases_the_gil():
+    # The thread runner codes batches in threads of one process; a kernel that held the
+    # GIL would run them one at a time (seen: 2 threads at 1.03x one). numba's
+    # dispatchers keep the compile options they were made with.
+    import importlib
+    import pkgutil
+
+    import numba.core.registry
+
+    import atomline.stages.coding as coding
+
+    kernels = {}
+    for info in pkgutil.iter_modules(coding.__path__):
+        module = importlib.import_module(f"{coding.__name__}.{info.name}")
+        for name, obj in vars(module).items():
+            if isinstance(obj, numba.core.registry.CPUDispatcher) and obj.__module__ == module.__name__:
+                kernels[f"{info.name}.{name}"] = obj.targetoptions.get("nogil", False)
+    assert "_common.orthogonal_pursuit" in kernels and len(kernels) >= 15
+    assert [name for name, nogil in kernels.items() if not nogil] == []

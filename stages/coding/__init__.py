@@ -74,7 +74,8 @@ Implementation notes
 --------------------
 Per-row algorithms run inside numba-compiled kernels (``cache=True``: compiled once per
 machine, about a second per kernel and dtype, then loaded from the user cache; see
-``_numba_cache``), single threaded so that worker processes × threads stay within the cores. The one product
+``_numba_cache``), single threaded so that worker processes × threads stay within the cores,
+and without the GIL so that worker threads of one process code their batches at once. The one product
 with the dictionary goes through :func:`._common.correlations`, which calls BLAS with a
 fixed block shape so that a row's result never depends on the other rows of its chunk.
 """

@@ -1,8 +1,8 @@
 """Shared pieces of the coders: the sparse layout, input validation, the Gram matrix,
 option checks and the compiled helpers several coders use.
 
-Compiled helpers use numba with ``cache=True`` (compiled once per machine, then loaded
-from ``__pycache__``) and no ``parallel``: each worker process stays single-threaded so
+Compiled helpers use numba through ``_numba_cache.kernel`` (cached once per machine in the
+user cache, GIL released) and no ``parallel``: each worker stays single-threaded so
 workers × threads never exceeds the cores. They loop over rows *inside* compiled code,
 which is how a per-row algorithm runs at the speed of the hardware.
 """
@@ -11,10 +11,10 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-import numba
 import numpy as np
 
 from ..errors import InputError, problem
+from ._numba_cache import kernel
 
 __all__ = [
     "SparseCodes",
@@ -275,13 +275,13 @@ def pack_dense(dense: np.ndarray, width: int) -> SparseCodes:
     return SparseCodes(index, value, count, k)
 
 
-@numba.njit(cache=True)
+@kernel
 def _pack_rows(dense, index, value, count):  # pragma: no cover - compiled
     for i in range(dense.shape[0]):
         pack_row(dense[i], i, index, value, count)
 
 
-@numba.njit(cache=True)
+@kernel
 def select_largest(mags, m, out):  # pragma: no cover - compiled
     """Indices of the ``m`` largest entries of ``mags`` (n,) into ``out[:m]``.
 
@@ -302,7 +302,7 @@ def select_largest(mags, m, out):  # pragma: no cover - compiled
     return m
 
 
-@numba.njit(cache=True)
+@kernel
 def pack_row(z, i, index, value, count):  # pragma: no cover - compiled
     """Write the nonzeros of ``z`` (k,) into row ``i`` of the layout, atom order.
 
@@ -335,7 +335,7 @@ def pack_row(z, i, index, value, count):  # pragma: no cover - compiled
     count[i] = s
 
 
-@numba.njit(cache=True, inline="always")
+@kernel(inline="always")
 def soft(v, t):  # pragma: no cover - compiled
     """Soft threshold of a scalar: sign(v) · max(|v| − t, 0)."""
     if v > t:
@@ -360,7 +360,7 @@ def greedy_options(n_atoms: int, n_nonzero: object, tol: object) -> tuple[int, f
     return min(n_nonzero, n_atoms), tol
 
 
-@numba.njit(cache=True)
+@kernel
 def append_atom(j, G, diag, U, Lm, s, alpha):  # pragma: no cover - compiled
     """Grow the progressive Cholesky state of one row by atom ``j``.
 
@@ -399,7 +399,7 @@ def append_atom(j, G, diag, U, Lm, s, alpha):  # pragma: no cover - compiled
     return vj
 
 
-@numba.njit(cache=True)
+@kernel
 def orthogonal_pursuit(C, G, xnorm, tol, order_recursive, index, value, count):  # pragma: no cover
     """Per-row OMP / ORMP in the correlation domain with a progressive Cholesky factor.
 
@@ -486,7 +486,7 @@ def orthogonal_pursuit(C, G, xnorm, tol, order_recursive, index, value, count): 
             value[i, t] = z[t]
 
 
-@numba.njit(cache=True)
+@kernel
 def solve_spd_dropping(A, b, out):  # pragma: no cover - compiled
     """Solve ``A y = b`` for a small symmetric positive semi-definite ``A`` (m, m).
 

@@ -1,4 +1,4 @@
-"""Where numba keeps the compiled coding kernels.
+"""How the coding kernels are compiled, and where numba keeps them.
 
 By default numba writes its cache into ``__pycache__`` beside the source file. For an
 installed package that is inside site-packages, where ``pip uninstall`` does not know the
@@ -13,7 +13,7 @@ import os
 
 import numba
 
-__all__ = ["use_user_cache_dir", "cache_dir"]
+__all__ = ["use_user_cache_dir", "cache_dir", "kernel"]
 
 
 def cache_dir() -> str:
@@ -33,3 +33,16 @@ def use_user_cache_dir() -> str:
     if not numba.config.CACHE_DIR:
         numba.config.CACHE_DIR = cache_dir()
     return numba.config.CACHE_DIR
+
+
+def kernel(fn=None, **options):
+    """Compile a coding kernel with numba: cached on disk, and releasing the GIL.
+
+    ``nogil=True`` because the default task runner runs batches in threads of one
+    process: a kernel holding the GIL serialised them (two worker threads encoded at
+    1.03x the rate of one before this). Use as ``@kernel`` or ``@kernel(inline="always")``.
+    """
+    options = {"cache": True, "nogil": True, **options}
+    if fn is None:
+        return numba.njit(**options)
+    return numba.njit(**options)(fn)

@@ -11,12 +11,12 @@ that keeps most of its energy, coded by its projection.
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 
 from ..errors import InputError, problem
 from ._common import (SparseCodes, append_atom, empty_codes, gram_and_correlations,
                       nonnegative_float, positive_int)
+from ._numba_cache import kernel
 
 __all__ = ["block_omp", "block_omp_width"]
 
@@ -74,7 +74,7 @@ def block_omp_width(n_atoms: int, *, group_size: int, n_groups: int, **_: object
     return min(n_groups, n_atoms // group_size) * group_size
 
 
-@numba.njit(cache=True)
+@kernel
 def _block_rows(C, G, xnorm, tol, group_size, index, value, count):  # pragma: no cover
     n, k = C.shape
     S = index.shape[1]

@@ -11,13 +11,13 @@ Cholesky factor that drops atoms in the span of others (duplicates).
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 
 from ._common import (
     SparseCodes, empty_codes, gram_and_correlations, greedy_options, positive_int, select_largest,
     solve_spd_dropping,
 )
+from ._numba_cache import kernel
 
 __all__ = ["cosamp", "cosamp_width"]
 
@@ -67,7 +67,7 @@ def cosamp_width(n_atoms: int, *, n_nonzero: int, **_: object) -> int:
     return greedy_options(n_atoms, n_nonzero, None)[0]
 
 
-@numba.njit(cache=True)
+@kernel
 def _least_squares(G, c, T, m, coef):  # pragma: no cover - compiled
     """Least squares on atoms ``T[:m]``: solve ``G[T,T] b = c[T]`` into ``coef[:m]``."""
     A = np.empty((m, m), dtype=G.dtype)
@@ -79,7 +79,7 @@ def _least_squares(G, c, T, m, coef):  # pragma: no cover - compiled
     solve_spd_dropping(A, rhs, coef[:m])
 
 
-@numba.njit(cache=True)
+@kernel
 def _sort_small(a, m):  # pragma: no cover - compiled
     """Insertion sort of ``a[:m]`` in place (m is the sparsity, a handful)."""
     for t in range(1, m):
@@ -91,7 +91,7 @@ def _sort_small(a, m):  # pragma: no cover - compiled
         a[r + 1] = v
 
 
-@numba.njit(cache=True)
+@kernel
 def _cosamp_rows(C, G, xnorm, tol, max_iter, index, value, count):  # pragma: no cover
     n, k = C.shape
     S = index.shape[1]

@@ -15,7 +15,6 @@ checked every ``check_every`` steps. :mod:`.ista` runs the same loop without mom
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 
 from ._common import (
@@ -23,6 +22,7 @@ from ._common import (
     pack_row, positive_int, soft,
 )
 from .lars import lasso_width
+from ._numba_cache import kernel
 
 __all__ = ["fista", "proximal_gradient"]
 
@@ -92,7 +92,7 @@ def proximal_gradient(X, atoms, *, lam, positive, init, max_iter, gap_tol, max_n
     return SparseCodes(index, value, count, k)
 
 
-@numba.njit(cache=True)
+@kernel
 def _gap(c, G, z, xnorm, lam, positive, h):  # pragma: no cover - compiled
     """Primal objective and duality gap of code ``z`` (k,); ``h`` is scratch (k,)."""
     k = z.shape[0]
@@ -121,7 +121,7 @@ def _gap(c, G, z, xnorm, lam, positive, h):  # pragma: no cover - compiled
     return primal, primal - dual
 
 
-@numba.njit(cache=True)
+@kernel
 def _prox_grad_rows(C, G, xnorm, Z0, has_init, lam, Lip, positive, momentum, max_iter,
                     gap_tol, check_every, index, value, count):  # pragma: no cover
     n, k = C.shape

@@ -18,11 +18,11 @@ Atoms in the span of the active ones (duplicates) are skipped.
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 
 from ._common import (SparseCodes, empty_codes, gram_and_correlations, nonnegative_float,
                       positive_int)
+from ._numba_cache import kernel
 
 __all__ = ["lars", "lasso_width"]
 
@@ -74,7 +74,7 @@ def lasso_width(n_atoms: int, *, max_nonzero: int | None = None, **_: object) ->
     return min(positive_int("max_nonzero", max_nonzero), n_atoms)
 
 
-@numba.njit(cache=True)
+@kernel
 def _cholesky_rebuild(G, A, m, L):  # pragma: no cover - compiled
     for r in range(m):
         for c in range(r + 1):
@@ -87,7 +87,7 @@ def _cholesky_rebuild(G, A, m, L):  # pragma: no cover - compiled
                 L[r, c] = acc / L[c, c]
 
 
-@numba.njit(cache=True)
+@kernel
 def _lars_rows(C, G, lam, positive, cap, index, value, count):  # pragma: no cover
     n, k = C.shape
     dt = C.dtype

@@ -20,7 +20,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import Any
 
-import numba
 import numpy as np
 
 from ..errors import InputError, problem
@@ -28,6 +27,7 @@ from ._common import (
     SparseCodes, check_problem, correlations, lipschitz, pack_row, positive_int, soft,
 )
 from .lars import lasso_width
+from ._numba_cache import kernel
 
 __all__ = ["LearnedEncoder", "fit_learned_encoder", "learned", "learned_width"]
 
@@ -294,7 +294,7 @@ def _plain(obj: Any) -> Any:
     return repr(obj)
 
 
-@numba.njit(cache=True)
+@kernel
 def _unrolled_rows(B, S, theta, n_layers, positive, index, value, count):  # pragma: no cover
     n, k = B.shape
     z = np.empty(k, dtype=B.dtype)

@@ -9,11 +9,11 @@ costs about ``2k`` operations per row on top of the floor product ``X @ atoms.T`
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 
 from ._common import (SparseCodes, empty_codes, gram_and_correlations, greedy_options,
                       positive_int)
+from ._numba_cache import kernel
 
 __all__ = ["mp", "mp_width"]
 
@@ -64,7 +64,7 @@ def mp_width(n_atoms: int, *, n_nonzero: int, **_: object) -> int:
     return greedy_options(n_atoms, n_nonzero, None)[0]
 
 
-@numba.njit(cache=True)
+@kernel
 def _mp_rows(C, G, xnorm, tol, steps, index, value, count):  # pragma: no cover - compiled
     n, k = C.shape
     S = index.shape[1]

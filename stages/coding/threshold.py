@@ -11,10 +11,10 @@ output ``j < k`` is atom ``j``'s positive part, output ``k + j`` its negative pa
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 
 from ._common import SparseCodes, correlation_blocks, nonnegative_float
+from ._numba_cache import kernel
 
 __all__ = ["threshold", "threshold_width"]
 
@@ -60,7 +60,7 @@ def threshold_width(n_atoms: int, *, alpha: float = 0.0, split_sign: bool = Fals
     return n_atoms
 
 
-@numba.njit(cache=True)
+@kernel
 def _threshold_rows(C, alpha, split_sign, index, value, count):  # pragma: no cover
     n, k = C.shape
     for i in range(n):

@@ -8,10 +8,10 @@ activation and the packing run in one compiled pass.
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 
 from ._common import SparseCodes, correlation_blocks
+from ._numba_cache import kernel
 
 __all__ = ["triangle", "triangle_width"]
 
@@ -47,7 +47,7 @@ def triangle_width(n_atoms: int, **_: object) -> int:
     return n_atoms
 
 
-@numba.njit(cache=True)
+@kernel
 def _triangle_rows(C, xnorm, wnorm, index, value, count):  # pragma: no cover
     n, k = C.shape
     dist = np.empty(k, dtype=C.dtype)
