@@ -400,6 +400,21 @@ def append_atom(j, G, diag, U, Lm, s, alpha):  # pragma: no cover - compiled
 
 
 @kernel
+def back_substitute(Lm, v, s, out):  # pragma: no cover - compiled
+    """Solve ``Lᵀ z = v`` on the leading ``s × s`` block of lower-triangular ``Lm``.
+
+    The last step of the progressive-Cholesky pursuits: ``v`` (≥ s,) holds ``L⁻¹ c[I]``,
+    so ``z`` are the least-squares coefficients on the active atoms; written to
+    ``out[:s]``.
+    """
+    for t in range(s - 1, -1, -1):
+        acc = v[t]
+        for r in range(t + 1, s):
+            acc -= Lm[r, t] * out[r]
+        out[t] = acc / Lm[t, t]
+
+
+@kernel
 def orthogonal_pursuit(C, G, xnorm, tol, order_recursive, index, value, count):  # pragma: no cover
     """Per-row OMP / ORMP in the correlation domain with a progressive Cholesky factor.
 
@@ -478,11 +493,8 @@ def orthogonal_pursuit(C, G, xnorm, tol, order_recursive, index, value, count): 
             index[i, s] = j
             s += 1
         count[i] = s
-        for t in range(s - 1, -1, -1):
-            acc = v[t]
-            for r in range(t + 1, s):
-                acc -= Lm[r, t] * z[r]
-            z[t] = acc / Lm[t, t]
+        back_substitute(Lm, v, s, z)
+        for t in range(s):
             value[i, t] = z[t]
 
 

@@ -14,7 +14,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import InputError, problem
-from ._common import (SparseCodes, append_atom, empty_codes, gram_and_correlations,
+from ._common import (SparseCodes, append_atom, back_substitute, empty_codes, gram_and_correlations,
                       nonnegative_float, positive_int)
 from ._numba_cache import kernel
 
@@ -123,9 +123,6 @@ def _block_rows(C, G, xnorm, tol, group_size, index, value, count):  # pragma: n
                 index[i, s] = j
                 s += 1
         count[i] = s
-        for t in range(s - 1, -1, -1):
-            acc = v[t]
-            for r in range(t + 1, s):
-                acc -= Lm[r, t] * z[r]
-            z[t] = acc / Lm[t, t]
+        back_substitute(Lm, v, s, z)
+        for t in range(s):
             value[i, t] = z[t]
