@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+import logging
 import os
 import tempfile
 import uuid
@@ -89,3 +91,29 @@ def digits_workspace():
     encode.encode_chunks(ws, "digits", dict_id, encode.prepare_encode(ws, "digits", dict_id)["pending"])
     pool.pool_chunks(ws, "digits", dict_id, pool.prepare_pool(ws, "digits", dict_id, regions=2)["pending"])
     return ws, dict_id
+
+
+@pytest.fixture
+def s3_endpoint(monkeypatch):
+    """A local S3-compatible endpoint (moto) on 127.0.0.1 with one bucket."""
+    pytest.importorskip("s3fs")
+    from moto.server import ThreadedMotoServer
+
+    from atomline.stages.workspace import STORAGE_OPTIONS_ENV
+
+    logging.getLogger("werkzeug").setLevel(logging.ERROR)  # one line per request otherwise
+    server = ThreadedMotoServer(ip_address="127.0.0.1", port=0, verbose=False)
+    server.start()
+    host, port = server.get_host_and_port()
+    options = {"key": "AKIDATOMLINETEST", "secret": "atomline-s3-secret-5f2c",
+               "client_kwargs": {"endpoint_url": f"http://{host}:{port}", "region_name": "eu-west-1"}}
+    import s3fs
+
+    s3fs.S3FileSystem(**options, skip_instance_cache=True).mkdir("archive", region_name="eu-west-1")
+    monkeypatch.setenv(STORAGE_OPTIONS_ENV, json.dumps(options))
+    yield options
+    # moto keeps its buckets in this process across servers: start the next test empty.
+    import requests
+
+    requests.post(f"http://{host}:{port}/moto-api/reset", timeout=10)
+    server.stop()

@@ -37,9 +37,14 @@ def _dead_pid() -> int:
     return child.pid
 
 
-@pytest.fixture(params=["local", "fsspec-memory"])
+@pytest.fixture(params=["local", "fsspec-memory", "s3"])
 def ws(request, tmp_path, memory_url):
-    url = str(tmp_path / "ws.zarr") if request.param == "local" else memory_url
+    # s3: s3fs against a local S3-compatible server (moto), where the lease is created
+    # with a conditional PUT (If-None-Match: *).
+    url = {"local": str(tmp_path / "ws.zarr"), "fsspec-memory": memory_url,
+           "s3": "s3://archive/leases-ws"}[request.param]
+    if request.param == "s3":
+        request.getfixturevalue("s3_endpoint")
     w = Workspace.open(url, create=True)
     w.add_records("r", np.ones((8, 4), np.float32), chunk_rows=2)
     return w

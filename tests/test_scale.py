@@ -92,26 +92,6 @@ def test_storage_options_come_from_code_or_environment(monkeypatch, tmp_path):
     assert "TOPSECRET" not in str(err.value)
 
 
-@pytest.fixture
-def s3_endpoint(monkeypatch):
-    """A local S3-compatible endpoint (moto) on 127.0.0.1 with one bucket."""
-    pytest.importorskip("s3fs")
-    from moto.server import ThreadedMotoServer
-
-    logging.getLogger("werkzeug").setLevel(logging.ERROR)  # one line per request otherwise
-    server = ThreadedMotoServer(ip_address="127.0.0.1", port=0, verbose=False)
-    server.start()
-    host, port = server.get_host_and_port()
-    options = {"key": "AKIDATOMLINETEST", "secret": "atomline-s3-secret-5f2c",
-               "client_kwargs": {"endpoint_url": f"http://{host}:{port}", "region_name": "eu-west-1"}}
-    import s3fs
-
-    s3fs.S3FileSystem(**options, skip_instance_cache=True).mkdir("archive", region_name="eu-west-1")
-    monkeypatch.setenv(STORAGE_OPTIONS_ENV, json.dumps(options))
-    yield options
-    server.stop()
-
-
 @pytest.mark.usefixtures("prefect_harness")
 def test_flows_on_s3_through_storage_options(s3_endpoint, demo_small):
     import s3fs
