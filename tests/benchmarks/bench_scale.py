@@ -10,7 +10,8 @@ Prints one table per measurement, every figure from this run:
 * encode rows/s for 1 and 2 workers with the threads, processes and Dask runners (whole
   flow wall time, runner start-up included), and the speed-up of 2 workers over 1 as a
   ratio to the speed-up two bare numpy processes reach doing the same coder work
-  (normalise + OMP on the same rows, same BLAS threads per worker; goal ≥ 0.9);
+  (normalise + OMP on the same rows, same BLAS threads per worker; goal ≥ 0.9); bare
+  numpy and the thread runner are medians of ``--repeats`` rounds run side by side;
 * orchestration share at the default batch plan: 1 − Σ task seconds / (workers × flow
   wall) — time the workers were not inside an encode task (goal ≤ 5 %) — over the whole
   flow run and over the part after the first task started (Prefect's own timestamps), so
@@ -84,7 +85,9 @@ def _bare_worker(args):
     from atomline.stages.prep import Normaliser
 
     normaliser = Normaliser.from_stored(prep_attrs, prep_arrays)
-    X = synthetic_block(start, n)
+    # Block by block, as fill_records wrote them (the same rows when start is a multiple
+    # of BLOCK), and without the (n, 5, 64) float64 temporary of one big block.
+    X = np.concatenate([synthetic_block(s, min(BLOCK, start + n - s)) for s in range(start, start + n, BLOCK)])
     atoms = atoms.astype(X.dtype)
     G = gram(atoms)
     barrier.wait()
@@ -258,6 +261,8 @@ def main() -> None:
     parser.add_argument("--rows", type=int, default=4_000_000, help="rows per runner measurement")
     parser.add_argument("--rss-rows", type=int, default=200_000, help="1x rows for the RSS check")
     parser.add_argument("--big-rows", type=int, default=10_000_000, help="rows of the large run (0: skip)")
+    parser.add_argument("--repeats", type=int, default=3,
+                        help="interleaved rounds of bare numpy and thread-runner runs (medians)")
     parser.add_argument("--runners", default="threads,processes,dask,dask-warm",
                         help="dask: a local cluster started by the runner; dask-warm: an existing one")
     parser.add_argument("--big-runners", default="threads,dask-warm",
@@ -291,20 +296,32 @@ def main() -> None:
                                    coder_options={"n_nonzero": NONZERO})["dict_id"]
         stored = ws.load_dictionary(dict_id)
 
-        # Bare numpy: same coder work, same BLAS threads per worker as the flow gives it.
-        bare1 = bare_seconds(1, args.rows, stored, blas_threads(1), chunk)
-        bare2 = bare_seconds(2, args.rows, stored, blas_threads(2), chunk)
-        bare_speedup = bare1 / bare2
-        table("bare numpy processes (normalise + OMP, no I/O, no Prefect)",
-              ["processes", "BLAS threads each", "rows/s", "speed-up"],
-              [[1, blas_threads(1), f"{args.rows / bare1:,.0f}", "1.00"],
-               [2, blas_threads(2), f"{args.rows / bare2:,.0f}", f"{bare_speedup:.2f}"]])
-
+        # Bare numpy (same coder work, same BLAS threads per worker as the flow gives it) and
+        # the thread runner, interleaved round by round: two vCPUs here scale differently
+        # from minute to minute, so the ratio compares medians measured side by side.
         fill_records(ws, "warm", 4 * chunk)
+        run_encode(url, "warm", dict_id, "threads", 1, scratch)  # first-use costs, see below
+        bare = {1: [], 2: []}
+        threaded = {1: [], 2: []}
+        for _ in range(args.repeats):
+            for w in (1, 2):
+                bare[w].append(bare_seconds(w, args.rows, stored, blas_threads(w), chunk))
+                threaded[w].append(run_encode(url, "sig", dict_id, "threads", w, scratch))
+        bare1, bare2 = float(np.median(bare[1])), float(np.median(bare[2]))
+        bare_speedup = bare1 / bare2
+        rounds = ", ".join(f"{b1 / b2:.2f}" for b1, b2 in zip(bare[1], bare[2]))
+        table(f"bare numpy processes (normalise + OMP, no I/O, no Prefect; median of {args.repeats})",
+              ["processes", "BLAS threads each", "rows/s", "speed-up", "speed-up per round"],
+              [[1, blas_threads(1), f"{args.rows / bare1:,.0f}", "1.00", ""],
+               [2, blas_threads(2), f"{args.rows / bare2:,.0f}", f"{bare_speedup:.2f}", rounds]])
+
         rows = []
         overhead_rows = []
         for kind in args.runners.split(","):
-            if kind == "dask-warm":  # a long-lived cluster: workers already imported everything
+            if kind == "threads":  # the run of median wall time of each worker count
+                res = {w: sorted(threaded[w], key=lambda r: r["wall"])[len(threaded[w]) // 2]
+                       for w in (1, 2)}
+            elif kind == "dask-warm":  # a long-lived cluster: workers already imported everything
                 res = {w: warm_dask_encode(url, dict_id, w, scratch) for w in (1, 2)}
             else:
                 # One small run first, so that this process's own first-use costs (Prefect's
@@ -318,7 +335,8 @@ def main() -> None:
                              f"{speedup:.2f}" if w == 2 else "",
                              f"{speedup / bare_speedup:.2f}" if w == 2 else ""])
                 overhead_rows.append(overhead_row(kind, w, r))
-        table(f"encode flow, {args.rows:,} rows, default batches (4 per worker)",
+        table(f"encode flow, {args.rows:,} rows, default batches (4 per worker); threads: median "
+              f"of {args.repeats}, the others one run",
               ["runner", "workers", "rows/s (flow wall)", "rows/s (encode phase)", "speed-up 2/1",
                "speed-up / bare (goal >= 0.9)"], rows)
         table("orchestration share = 1 - task seconds / (workers x time) (goal <= 5 %)",
