@@ -218,23 +218,24 @@ def pool_chunks(
     params = attrs["params"]
     region, R = region_of_patches(geometry.grid, params["regions"])
     P, rows_per_chunk = cattrs["patches_per_record"], cattrs["record_chunk_rows"]
-    n_records = out.group["values"].shape[0]
+    n_records = out.n_rows
     pooled = skipped = done_records = 0
+    done, coded, bad = out.done_among(chunks), codes.done_among(chunks), codes.skipped_among(chunks)
     for c in chunks:
-        if out.is_done(c):
+        if c in done:
             skipped += 1
             continue
-        if not codes.is_done(c):
+        if c not in coded:
             raise InputError(problem(f"{codes_path(dict_id, records)}, chunk {c}",
                                      "encoded codes", "a chunk not encoded yet",
                                      "Run the encode flow first."))
         rows = slice(c * rows_per_chunk, min(n_records, (c + 1) * rows_per_chunk))
-        if codes.is_skipped(c):  # its input chunk was bad: no features either
+        if c in bad:  # its input chunk was bad: no features either
             out.skip(c, rows, "codes chunk skipped")
             pooled += 1
             continue
         crow = slice(rows.start * P, rows.stop * P)
-        feats = pool_codes(codes.group["index"][crow], codes.group["value"][crow],
+        feats = pool_codes(codes.read("index", crow), codes.read("value", crow),
                            n_atoms=cattrs["n_atoms"], patch_region=region, n_regions=R,
                            reduce=params["reduce"], split_sign=params["split_sign"])
         out.commit(c, rows, {"values": feats})

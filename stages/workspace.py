@@ -191,12 +191,16 @@ class Output:
         self.group = group
         self.path = path or group.path
         _check_group_members(group, self.path)  # raw metadata, before Zarr parses it
-        for name, arr in group.arrays():  # and the parsed form, before any chunk is decoded
+        arrays = dict(group.arrays())
+        for name, arr in arrays.items():  # and the parsed form, before any chunk is decoded
             _check_safe(arr, f"{self.path}/{name}")
-        if "done" not in group or not isinstance(group["done"], zarr.Array):
+        if "done" not in arrays:
             raise LayoutError(problem(self.path, "an output with a 'done' array",
                                       "a group without one", "Rebuild the output (overwrite=True)."))
-        self._done = group["done"]
+        self._done = arrays.pop("done")
+        # The data arrays, opened once: every write and resize goes through these objects
+        # (opening one reads its metadata, a store round trip per chunk and array otherwise).
+        self._data = dict(sorted(arrays.items()))
         kind = self.path.split("/")[0]
         if kind in _OUTPUT_ATTRS:
             require_attrs(dict(group.attrs), _OUTPUT_ATTRS[kind], self.path)
@@ -211,22 +215,49 @@ class Output:
         """Number of row chunks (and of done flags)."""
         return int(self._done.shape[0])
 
-    def _flags(self) -> np.ndarray:
-        """Raw flag values; a flag chunk that cannot be decoded counts as 0 (to do)."""
+    def _flags(self, first: int = 0, stop: int | None = None) -> np.ndarray:
+        """Raw flag values of chunks ``first … stop − 1`` (default all), in one read.
+
+        A flag chunk that cannot be decoded counts as 0 (to do).
+        """
+        stop = self.n_chunks if stop is None else stop
         try:
-            return np.asarray(self._done[:])
+            return np.asarray(self._done[first:stop])
         except Exception:  # one torn flag must not make the whole output unreadable
-            flags = np.zeros(self.n_chunks, dtype=np.uint8)
-            for c in range(self.n_chunks):
+            flags = np.zeros(stop - first, dtype=np.uint8)
+            for c in range(first, stop):
                 try:
-                    flags[c] = self._done[c]
+                    flags[c - first] = self._done[c]
                 except Exception:
-                    flags[c] = 0
+                    flags[c - first] = 0
             return flags
 
     def done_flags(self) -> np.ndarray:
         """ndarray of shape (n_chunks,), bool: which chunks are finished (or skipped)."""
         return self._flags() > 0
+
+    def _flags_among(self, chunks: list[int]) -> dict[int, int]:
+        if not len(chunks):
+            return {}
+        first = min(chunks)
+        flags = self._flags(first, max(chunks) + 1)
+        return {int(c): int(flags[c - first]) for c in chunks}
+
+    def done_among(self, chunks: list[int]) -> set[int]:
+        """Which of ``chunks`` are finished (or skipped), from one read of their flags.
+
+        For a task's batch (a contiguous run of chunks): one store round trip for the
+        batch instead of one per chunk.
+        """
+        return {c for c, flag in self._flags_among(chunks).items() if flag > 0}
+
+    def skipped_among(self, chunks: list[int]) -> set[int]:
+        """Which of ``chunks`` were skipped for bad input, from one read of their flags."""
+        return {c for c, flag in self._flags_among(chunks).items() if flag == _SKIPPED}
+
+    def read(self, name: str, rows: slice) -> np.ndarray:
+        """Rows ``rows`` of the data array ``name`` (opened once with the output)."""
+        return np.asarray(self._data[name][rows])
 
     def pending(self) -> list[int]:
         """Chunk numbers still to do, in order."""
@@ -277,16 +308,15 @@ class Output:
         numbers that look real.
         """
         fills = {}
-        for name, arr in self.group.arrays():
-            if name != "done":
-                n = len(range(*rows.indices(arr.shape[0])))
-                fills[name] = np.full((n, *arr.shape[1:]), arr.fill_value, dtype=arr.dtype)
+        for name, arr in self._data.items():
+            n = len(range(*rows.indices(arr.shape[0])))
+            fills[name] = np.full((n, *arr.shape[1:]), arr.fill_value, dtype=arr.dtype)
         self._write(chunk, rows, fills, _SKIPPED)
 
     def _write(self, chunk: int, rows: slice, data: dict[str, np.ndarray], flag: int) -> None:
         try:
             for name, values in data.items():
-                self.group[name][rows] = values
+                self._data[name][rows] = values
             self._done[chunk] = flag
         except AtomlineError:
             raise
@@ -326,10 +356,7 @@ class Output:
     @property
     def n_rows(self) -> int:
         """Rows of the data arrays."""
-        return int(self.group[self._data_names()[0]].shape[0])
-
-    def _data_names(self) -> list[str]:
-        return sorted(k for k in self.group.array_keys() if k != "done")
+        return int(next(iter(self._data.values())).shape[0])
 
     def grow(self, n_rows: int) -> list[int]:
         """Extend the data arrays to ``n_rows`` rows (the records grew).
@@ -348,8 +375,7 @@ class Output:
         list of int
             Chunk numbers that became pending.
         """
-        names = self._data_names()
-        chunk_rows = int(self.group[names[0]].chunks[0])
+        chunk_rows = int(next(iter(self._data.values())).chunks[0])
         old = self.n_rows
         if n_rows < old:
             raise FingerprintMismatch(problem(f"output {self.group.path}", f"at most {old} rows to keep",
@@ -357,8 +383,7 @@ class Output:
         first = old // chunk_rows
         if old % chunk_rows and first < self.n_chunks:
             self._done[first] = 0
-        for name in names:
-            a = self.group[name]
+        for a in self._data.values():
             a.resize((n_rows, *a.shape[1:]))
         n_chunks = -(-n_rows // chunk_rows)
         self._done.resize((n_chunks,))
@@ -728,9 +753,12 @@ class Workspace:
         rows = next(iter_row_chunks(arr, [chunk]))[1]
         where = f"records {name!r}, chunk {chunk} (rows {rows.start}..{rows.stop - 1})"
         fix = "Restore the chunk from its source, or rerun with on_bad_chunk='skip' (--on-bad-chunk skip)."
-        node = self.root[f"data/{name}"]
-        if node.attrs.get("all_chunks_stored") or "absent_chunks" in node.attrs:
-            if chunk not in node.attrs.get("absent_chunks", []):
+        # Records stored in the workspace are their own node (its attributes came with
+        # ``arr``, no store round trip per chunk); a link's node is the group holding it.
+        in_place = arr.store is self.root.store and arr.path == f"{self.root.path}/data/{name}".lstrip("/")
+        attrs = arr.attrs if in_place else self.root[f"data/{name}"].attrs
+        if attrs.get("all_chunks_stored") or "absent_chunks" in attrs:
+            if chunk not in attrs.get("absent_chunks", []):
                 missing = _absent_chunk_keys(arr, rows)
                 if missing:
                     raise BadChunk(problem(where, "a stored chunk", f"no object at {missing[0]!r}", fix))
