@@ -315,8 +315,7 @@ class Output:
 
     def _write(self, chunk: int, rows: slice, data: dict[str, np.ndarray], flag: int) -> None:
         try:
-            for name, values in data.items():
-                self._data[name][rows] = values
+            _write_together([(self._data[name], rows, values) for name, values in data.items()])
             self._done[chunk] = flag
         except AtomlineError:
             raise
@@ -1547,6 +1546,22 @@ def _check_array_path(path: str) -> str:
         raise InputError(problem("array path", "a relative path inside the store (no '..', no leading '/')",
                                  repr(path), "Give the path of the array inside its store."))
     return path
+
+
+def _write_together(writes: list[tuple[zarr.Array, slice, np.ndarray]]) -> None:
+    """Write several arrays' rows in one pass through Zarr's event loop, all finished on return.
+
+    Each synchronous Zarr call is a round trip through one event-loop thread; writing a
+    chunk's arrays concurrently makes it one, and lets their compression overlap.
+    """
+    import asyncio
+
+    from zarr.core.sync import sync
+
+    async def together():
+        await asyncio.gather(*(arr.async_array.setitem(rows, values) for arr, rows, values in writes))
+
+    sync(together())
 
 
 def _absent_chunk_keys(arr: zarr.Array, rows: slice) -> list[str]:
