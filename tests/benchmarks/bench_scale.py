@@ -17,6 +17,8 @@ Prints one table per measurement, every figure from this run:
   flow run and over the part after the first task started (Prefect's own timestamps), so
   that the worker start-up a process or Dask runner pays per flow run is shown apart;
   ``dask-warm`` is an existing cluster, as a scheduler address gives in production;
+* how each part of encoding a chunk (read, prepare, code, commit) scales from one to
+  two threads of one process;
 * peak RSS of the ``atomline encode`` command on 1× and 10× the rows (goal: within 10 %);
 * rows/s for a ``--big-rows``-row, 64-dimensional archive (default ten million), with the
   thread runner and an existing Dask cluster.
@@ -176,6 +178,62 @@ def run_encode(url: str, name: str, dict_id: str, kind: str, workers: int, scrat
             "startup": (first - flow_run.start_time).total_seconds(),
             "span": (last - first).total_seconds(),
             "tail": (flow_run.end_time - last).total_seconds()}
+
+
+def thread_scaling_of_parts(url: str, name: str, dict_id: str, n_chunks: int = 28) -> list[list]:
+    """Each part of encoding a chunk, on ``n_chunks`` chunks, in 1 thread and then 2 threads.
+
+    Read (``read_chunk``), prepare (patches, normalise), code (OMP) and commit (three
+    arrays and the flag): which parts two worker threads of one process do side by side.
+    """
+    from concurrent.futures import ThreadPoolExecutor
+
+    from threadpoolctl import threadpool_limits
+
+    from atomline.stages import encode
+    from atomline.stages.coding import code, gram
+    from atomline.stages.prep import Normaliser, PatchGeometry
+    from atomline.stages.workspace import Workspace
+
+    ws = Workspace.open(url)
+    arr, stored = ws.records(name), ws.load_dictionary(dict_id)
+    normaliser = Normaliser.from_stored(stored.attrs["preprocessing"], stored.arrays)
+    atoms = stored.atoms.astype(arr.dtype)
+    G = gram(atoms)
+    encode.prepare_encode(ws, name, dict_id, overwrite=True)
+    out = ws.output(encode.codes_path(dict_id, name))
+    geometry = PatchGeometry.from_attrs(out.attrs["geometry"])
+    rows = int(arr.chunks[0])
+    blocks = [ws.read_chunk(name, c, arr) for c in range(n_chunks)]
+    coded = [code(normaliser.apply(geometry.extract(b)), atoms, "omp", n_nonzero=NONZERO, gram=G)
+             for b in blocks]
+    parts = {
+        "read": lambda c: ws.read_chunk(name, c, arr),
+        "prepare": lambda c: normaliser.apply(geometry.extract(blocks[c])),
+        "code": lambda c: code(blocks[c], atoms, "omp", n_nonzero=NONZERO, gram=G),
+        "commit": lambda c: out.commit(c, slice(c * rows, (c + 1) * rows), {
+            "index": coded[c].index.astype(np.int32), "value": coded[c].value.astype(np.float32),
+            "count": coded[c].count.astype(np.int32)}),
+    }
+
+    def run(part, chunks):
+        with threadpool_limits(limits=1):
+            for c in chunks:
+                part(c)
+
+    table_rows = []
+    for label, part in parts.items():
+        run(part, range(2))
+        t0 = time.perf_counter()
+        run(part, range(n_chunks))
+        one = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        with ThreadPoolExecutor(2) as pool:
+            list(pool.map(lambda cs: run(part, cs), [range(0, n_chunks, 2), range(1, n_chunks, 2)]))
+        two = time.perf_counter() - t0
+        table_rows.append([label, f"{1000 * one / n_chunks:.1f}", f"{1000 * two / n_chunks:.1f}",
+                           f"{one / two:.2f}"])
+    return table_rows
 
 
 # The child's own high-water mark. Not getrusage's ru_maxrss: Linux carries the forking
@@ -342,6 +400,9 @@ def main() -> None:
         table("orchestration share = 1 - task seconds / (workers x time) (goal <= 5 %)",
               OVERHEAD_HEADER, overhead_rows)
         print(f"(an empty Prefect flow run costs {empty_flow_seconds():.2f} s of flow wall here)")
+        table("parts of encoding one chunk, 1 then 2 threads of one process (one BLAS thread each)",
+              ["part", "ms per chunk, 1 thread", "ms per chunk, 2 threads", "speed-up"],
+              thread_scaling_of_parts(url, "sig", dict_id))
 
         n1 = args.rss_rows
         fill_records(ws, "rss1", n1)
