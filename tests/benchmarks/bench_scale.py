@@ -8,7 +8,9 @@ Run as a script (pytest does not collect ``bench_*.py``)::
 Prints one table per measurement, every figure from this run:
 
 * encode rows/s for 1 and 2 workers with the threads, processes and Dask runners (whole
-  flow wall time, runner start-up included), and the speed-up of 2 workers over 1 as a
+  flow wall time, runner start-up included), the cores kept busy (CPU seconds of every
+  thread over wall time: bare processes, and the flow process of the thread runner), and
+  the speed-up of 2 workers over 1 as a
   ratio to the speed-up two bare numpy processes reach doing the same coder work
   (normalise + OMP on the same rows, same BLAS threads per worker; goal ≥ 0.9); bare
   numpy and the thread runner are medians of ``--repeats`` rounds run side by side;
@@ -93,15 +95,18 @@ def _bare_worker(args):
     atoms = atoms.astype(X.dtype)
     G = gram(atoms)
     barrier.wait()
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     with threadpool_limits(limits=blas):
         for s in range(0, n, chunk):
             code(normaliser.apply(X[s : s + chunk]), atoms, "omp", n_nonzero=NONZERO, gram=G)
-    out.put(time.perf_counter() - t0)
+    out.put((time.perf_counter() - t0, time.process_time() - c0))
 
 
-def bare_seconds(n_procs: int, n_rows: int, stored, blas: int, chunk: int) -> float:
-    """Wall time for ``n_procs`` spawned processes sharing ``n_rows`` rows equally."""
+def bare_seconds(n_procs: int, n_rows: int, stored, blas: int, chunk: int) -> tuple[float, float]:
+    """Wall time for ``n_procs`` spawned processes sharing ``n_rows`` rows equally.
+
+    Also the cores they kept busy: their CPU seconds (every thread) over that wall time.
+    """
     ctx = mp.get_context("spawn")
     barrier, out = ctx.Barrier(n_procs), ctx.Queue()
     share = n_rows // n_procs
@@ -111,10 +116,11 @@ def bare_seconds(n_procs: int, n_rows: int, stored, blas: int, chunk: int) -> fl
              for i in range(n_procs)]
     for p in procs:
         p.start()
-    times = [out.get() for _ in procs]
+    times = [out.get() for _ in procs]  # (wall, CPU seconds of all the process's threads)
     for p in procs:
         p.join()
-    return max(times)
+    wall = max(t for t, _ in times)
+    return wall, sum(c for _, c in times) / wall
 
 
 # ---------------------------------------------------------------------------- flows
@@ -162,10 +168,10 @@ def run_encode(url: str, name: str, dict_id: str, kind: str, workers: int, scrat
     from atomline.flows.runners import task_runner
 
     runner = task_runner(kind, workers, address, dask_options={"local_directory": scratch})
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), os.times()
     state = encode_flow.with_options(task_runner=runner)(url, name, dict_id=dict_id, workers=workers,
                                                          overwrite=True, return_state=True)
-    wall = time.perf_counter() - t0
+    wall, c1 = time.perf_counter() - t0, os.times()
     summary = state.result()
     run_id = state.state_details.flow_run_id
     with get_client(sync_client=True) as client:
@@ -177,7 +183,10 @@ def run_encode(url: str, name: str, dict_id: str, kind: str, workers: int, scrat
             "phase": summary["seconds"], "encoded": summary["encoded"], "tasks": len(tasks),
             "startup": (first - flow_run.start_time).total_seconds(),
             "span": (last - first).total_seconds(),
-            "tail": (flow_run.end_time - last).total_seconds()}
+            "tail": (flow_run.end_time - last).total_seconds(),
+            # CPU of this process's threads over the wall time: the work itself with the
+            # thread runner (other runners work in other processes).
+            "cores": ((c1.user - c0.user) + (c1.system - c0.system)) / wall}
 
 
 def thread_scaling_of_parts(url: str, name: str, dict_id: str, n_chunks: int = 28) -> list[list]:
@@ -365,13 +374,15 @@ def main() -> None:
             for w in (1, 2):
                 bare[w].append(bare_seconds(w, args.rows, stored, blas_threads(w), chunk))
                 threaded[w].append(run_encode(url, "sig", dict_id, "threads", w, scratch))
-        bare1, bare2 = float(np.median(bare[1])), float(np.median(bare[2]))
+        (bare1, cores1), (bare2, cores2) = (
+            tuple(float(v) for v in np.median(np.array(bare[w]), axis=0)) for w in (1, 2))
         bare_speedup = bare1 / bare2
-        rounds = ", ".join(f"{b1 / b2:.2f}" for b1, b2 in zip(bare[1], bare[2]))
+        rounds = ", ".join(f"{b1[0] / b2[0]:.2f}" for b1, b2 in zip(bare[1], bare[2]))
         table(f"bare numpy processes (normalise + OMP, no I/O, no Prefect; median of {args.repeats})",
-              ["processes", "BLAS threads each", "rows/s", "speed-up", "speed-up per round"],
-              [[1, blas_threads(1), f"{args.rows / bare1:,.0f}", "1.00", ""],
-               [2, blas_threads(2), f"{args.rows / bare2:,.0f}", f"{bare_speedup:.2f}", rounds]])
+              ["processes", "BLAS threads each", "rows/s", "cores busy", "speed-up", "speed-up per round"],
+              [[1, blas_threads(1), f"{args.rows / bare1:,.0f}", f"{cores1:.2f}", "1.00", ""],
+               [2, blas_threads(2), f"{args.rows / bare2:,.0f}", f"{cores2:.2f}", f"{bare_speedup:.2f}",
+                rounds]])
 
         rows = []
         overhead_rows = []
@@ -390,12 +401,14 @@ def main() -> None:
             for w in (1, 2):
                 r = res[w]
                 rows.append([kind, w, f"{r['rows'] / r['wall']:,.0f}", f"{r['rows'] / r['phase']:,.0f}",
+                             f"{r['cores']:.2f}" if kind == "threads" else "",
                              f"{speedup:.2f}" if w == 2 else "",
                              f"{speedup / bare_speedup:.2f}" if w == 2 else ""])
                 overhead_rows.append(overhead_row(kind, w, r))
         table(f"encode flow, {args.rows:,} rows, default batches (4 per worker); threads: median "
               f"of {args.repeats}, the others one run",
-              ["runner", "workers", "rows/s (flow wall)", "rows/s (encode phase)", "speed-up 2/1",
+              ["runner", "workers", "rows/s (flow wall)", "rows/s (encode phase)",
+               "cores busy (flow process)", "speed-up 2/1",
                "speed-up / bare (goal >= 0.9)"], rows)
         table("orchestration share = 1 - task seconds / (workers x time) (goal <= 5 %)",
               OVERHEAD_HEADER, overhead_rows)
