@@ -405,7 +405,7 @@ def back_substitute(Lm, v, s, out):  # pragma: no cover - compiled
 
     The last step of the progressive-Cholesky pursuits: ``v`` (≥ s,) holds ``L⁻¹ c[I]``,
     so ``z`` are the least-squares coefficients on the active atoms; written to
-    ``out[:s]``.
+    ``out[:s]`` (the row's value slots, of ``v``'s dtype).
     """
     for t in range(s - 1, -1, -1):
         acc = v[t]
@@ -442,7 +442,6 @@ def orthogonal_pursuit(C, G, xnorm, tol, order_recursive, index, value, count): 
     U = np.zeros((S, k), dtype=dt)
     Lm = np.zeros((S, S), dtype=dt)
     v = np.zeros(S, dtype=dt)
-    z = np.zeros(S, dtype=dt)
     alpha = np.empty(k, dtype=dt)
     q = np.zeros(k, dtype=dt)
     diag = np.empty(k, dtype=dt)
@@ -493,9 +492,7 @@ def orthogonal_pursuit(C, G, xnorm, tol, order_recursive, index, value, count): 
             index[i, s] = j
             s += 1
         count[i] = s
-        back_substitute(Lm, v, s, z)
-        for t in range(s):
-            value[i, t] = z[t]
+        back_substitute(Lm, v, s, value[i])
 
 
 @kernel

@@ -84,7 +84,6 @@ def _block_rows(C, G, xnorm, tol, group_size, index, value, count):  # pragma: n
     U = np.zeros((S, k), dtype=dt)
     Lm = np.zeros((S, S), dtype=dt)
     v = np.zeros(S, dtype=dt)
-    z = np.zeros(S, dtype=dt)
     alpha = np.empty(k, dtype=dt)
     taken = np.zeros(n_all, dtype=np.bool_)
     diag = np.empty(k, dtype=dt)
@@ -123,6 +122,4 @@ def _block_rows(C, G, xnorm, tol, group_size, index, value, count):  # pragma: n
                 index[i, s] = j
                 s += 1
         count[i] = s
-        back_substitute(Lm, v, s, z)
-        for t in range(s):
-            value[i, t] = z[t]
+        back_substitute(Lm, v, s, value[i])
