@@ -179,7 +179,7 @@ def encode_chunks(
     P = attrs["patches_per_record"]
     width = attrs["width"]
     encoded = skipped = bad = n_records = 0
-    done = out.done_among(chunks)
+    done, _ = out.done_among(chunks)
     with threadpool_limits(limits=blas_threads):
         for c, rows in iter_row_chunks(arr, chunks):
             if c in done:

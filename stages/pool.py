@@ -220,7 +220,7 @@ def pool_chunks(
     P, rows_per_chunk = cattrs["patches_per_record"], cattrs["record_chunk_rows"]
     n_records = out.n_rows
     pooled = skipped = done_records = 0
-    done, coded, bad = out.done_among(chunks), codes.done_among(chunks), codes.skipped_among(chunks)
+    (done, _), (coded, bad) = out.done_among(chunks), codes.done_among(chunks)
     for c in chunks:
         if c in done:
             skipped += 1

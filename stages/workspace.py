@@ -236,24 +236,25 @@ class Output:
         """ndarray of shape (n_chunks,), bool: which chunks are finished (or skipped)."""
         return self._flags() > 0
 
-    def _flags_among(self, chunks: list[int]) -> dict[int, int]:
+    def done_among(self, chunks: list[int]) -> tuple[set[int], set[int]]:
+        """Which of ``chunks`` are finished, and which of those were skipped for bad input.
+
+        One read of the flags for a task's batch (a contiguous run of chunks), instead of
+        one store round trip per chunk.
+
+        Returns
+        -------
+        done : set of int
+            Finished chunks (done or skipped).
+        skipped : set of int
+            The skipped ones among them.
+        """
         if not len(chunks):
-            return {}
+            return set(), set()
         first = min(chunks)
         flags = self._flags(first, max(chunks) + 1)
-        return {int(c): int(flags[c - first]) for c in chunks}
-
-    def done_among(self, chunks: list[int]) -> set[int]:
-        """Which of ``chunks`` are finished (or skipped), from one read of their flags.
-
-        For a task's batch (a contiguous run of chunks): one store round trip for the
-        batch instead of one per chunk.
-        """
-        return {c for c, flag in self._flags_among(chunks).items() if flag > 0}
-
-    def skipped_among(self, chunks: list[int]) -> set[int]:
-        """Which of ``chunks`` were skipped for bad input, from one read of their flags."""
-        return {c for c, flag in self._flags_among(chunks).items() if flag == _SKIPPED}
+        done = {int(c) for c in chunks if flags[c - first] > 0}
+        return done, {c for c in done if flags[c - first] == _SKIPPED}
 
     def read(self, name: str, rows: slice) -> np.ndarray:
         """Rows ``rows`` of the data array ``name`` (opened once with the output)."""
