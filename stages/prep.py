@@ -26,6 +26,7 @@ from dataclasses import asdict, dataclass, field, fields, replace
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
+from .coding._rows import product, row_energies, row_means
 from .errors import InputError, problem
 
 __all__ = ["PatchGeometry", "Normaliser"]
@@ -296,7 +297,7 @@ class Normaliser:
         if self.mean is not None:
             out = out - self.mean.astype(out.dtype, copy=False)
         if self.whitening is not None:
-            out = out @ self.whitening.astype(out.dtype, copy=False)
+            out = product(out, self.whitening)  # row-invariant, unlike BLAS
         return out
 
     def to_attrs(self) -> dict:
@@ -348,12 +349,15 @@ def _checked(patches: np.ndarray) -> np.ndarray:
     return patches
 
 
+# Per-row sums go through the coding kernels' fixed-order reductions (numpy's peel their
+# SIMD loops by memory alignment, so a row's mean could change with its place in a chunk).
 def _centred(patches: np.ndarray, remove_mean: bool) -> np.ndarray:
     if remove_mean:
-        return patches - patches.mean(axis=1, keepdims=True)
+        return patches - row_means(patches)[:, None]
     return patches
 
 
 def _contrast(centred: np.ndarray, eps: float) -> np.ndarray:
-    scale = np.sqrt(np.mean(centred * centred, axis=1, keepdims=True) + eps)
-    return centred / scale.astype(centred.dtype, copy=False)
+    d = max(centred.shape[1], 1)
+    scale = np.sqrt(row_energies(centred).astype(np.float64) / d + eps)
+    return centred / scale.astype(centred.dtype, copy=False)[:, None]

@@ -15,6 +15,7 @@ import numpy as np
 
 from ..errors import InputError, problem
 from ._numba_cache import kernel
+from ._rows import product, top_eigenvalue_bound
 
 __all__ = [
     "SparseCodes",
@@ -196,9 +197,11 @@ def gram(atoms: np.ndarray) -> np.ndarray:
     Returns
     -------
     ndarray of shape (k, k)
-        ``atoms @ atoms.T``.
+        ``atoms @ atoms.T`` through the row-invariant :func:`._rows.product`: the same
+        bytes whatever the BLAS thread count (BLAS's symmetric product differs in the
+        last bit between one and two threads) and on every CPU.
     """
-    return atoms @ atoms.T
+    return product(atoms, atoms.T)
 
 
 def lipschitz(atoms: np.ndarray) -> float:
@@ -211,10 +214,13 @@ def lipschitz(atoms: np.ndarray) -> float:
     Returns
     -------
     float
-        ``‖atoms‖₂²``, computed from the smaller of the two Gram matrices.
+        An upper bound on ``‖atoms‖₂²`` within a relative 1e-6, from the smaller of the
+        two Gram matrices in float64 (:func:`._rows.top_eigenvalue_bound`: the same
+        number on every CPU and thread count, which LAPACK's eigensolvers do not promise).
     """
-    small = atoms.T @ atoms if atoms.shape[1] < atoms.shape[0] else atoms @ atoms.T
-    top = float(np.linalg.eigvalsh(small.astype(np.float64))[-1])
+    A = np.asarray(atoms, dtype=np.float64)
+    small = product(A.T, A) if A.shape[1] < A.shape[0] else product(A, A.T)
+    top = top_eigenvalue_bound(small)
     return top if top > 0 else 1.0
 
 
@@ -545,63 +551,6 @@ def solve_spd_dropping(A, b, out):  # pragma: no cover - compiled
     return kept
 
 
-#: Rows per BLAS call in :func:`correlations`; a multiple of 48 so that every row falls
-#: in a full micro-tile of the usual GEMM kernels (tile heights 4, 8, 12, 16, 24).
-_BLOCK_ROWS = 384
-
-
-def correlation_blocks(X: np.ndarray, M: np.ndarray):
-    """Yield ``(start, stop, X[start:stop] @ M)`` block by block, row-invariantly.
-
-    BLAS libraries choose kernels and tile edges from the shape and memory alignment
-    of the whole call (OpenBLAS was seen to give other last bits for 1–3-row calls and
-    for rows on a tile edge), so a chunk coded in two pieces could differ in the last
-    bit from one call. Here every call has the same shape (``_BLOCK_ROWS`` rows, the
-    last block zero-padded) and reads an aligned copy, so a row's result depends on
-    that row alone. The extra cost is one copy of ``X``; a coder that consumes each
-    block at once also keeps the product in cache instead of memory.
-
-    Parameters
-    ----------
-    X : ndarray of shape (n_rows, d)
-    M : ndarray of shape (d, m), same dtype
-
-    Yields
-    ------
-    start, stop : int
-    block : ndarray of shape (stop - start, m)
-        Valid until the next block is produced.
-    """
-    n, d = X.shape
-    buf = np.zeros((_BLOCK_ROWS, d), dtype=X.dtype)
-    out = np.empty((_BLOCK_ROWS, M.shape[1]), dtype=X.dtype)
-    for start in range(0, n, _BLOCK_ROWS):  # loop over blocks of rows, not rows
-        stop = min(n, start + _BLOCK_ROWS)
-        buf[: stop - start] = X[start:stop]
-        buf[stop - start:] = 0
-        np.matmul(buf, M, out=out)
-        yield start, stop, out[: stop - start]
-
-
-def correlations(X: np.ndarray, M: np.ndarray) -> np.ndarray:
-    """``X @ M`` with each row's bytes independent of the other rows (see
-    :func:`correlation_blocks`).
-
-    Parameters
-    ----------
-    X : ndarray of shape (n_rows, d)
-    M : ndarray of shape (d, m), same dtype
-
-    Returns
-    -------
-    ndarray of shape (n_rows, m)
-    """
-    out = np.empty((X.shape[0], M.shape[1]), dtype=X.dtype)
-    for start, stop, block in correlation_blocks(X, M):
-        out[start:stop] = block
-    return out
-
-
 def gram_and_correlations(
     X: np.ndarray, atoms: np.ndarray, gram_matrix: np.ndarray | None = None
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -619,10 +568,10 @@ def gram_and_correlations(
     G : ndarray of shape (k, k)
     C : ndarray of shape (n_rows, k)
         ``X @ atoms.T``, the floor product, through the row-invariant
-        :func:`correlations`.
+        :func:`._rows.product`.
     """
     G = gram(atoms) if gram_matrix is None else np.ascontiguousarray(gram_matrix, dtype=X.dtype)
-    return G, correlations(X, atoms.T)
+    return G, product(X, atoms.T)
 
 
 def empty_codes(n: int, width: int, dtype: np.dtype) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

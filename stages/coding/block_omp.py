@@ -17,6 +17,7 @@ from ..errors import InputError, problem
 from ._common import (SparseCodes, append_atom, back_substitute, empty_codes, gram_and_correlations,
                       nonnegative_float, positive_int)
 from ._numba_cache import kernel
+from ._rows import row_energies
 
 __all__ = ["block_omp", "block_omp_width"]
 
@@ -57,7 +58,7 @@ def block_omp(
     width = block_omp_width(k, group_size=group_size, n_groups=n_groups)
     tol = 0.0 if tol is None else nonnegative_float("tol", tol)
     G, C = gram_and_correlations(X, atoms, gram)  # C: the floor product
-    xnorm = np.einsum("ij,ij->i", X, X)
+    xnorm = row_energies(X)
     n = X.shape[0]
     index, value, count = empty_codes(n, width, X.dtype)
     _block_rows(C, G, xnorm, X.dtype.type(tol), int(group_size), index, value, count)

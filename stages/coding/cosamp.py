@@ -18,6 +18,7 @@ from ._common import (
     solve_spd_dropping,
 )
 from ._numba_cache import kernel
+from ._rows import row_energies
 
 __all__ = ["cosamp", "cosamp_width"]
 
@@ -55,7 +56,7 @@ def cosamp(
     S, tol = greedy_options(k, n_nonzero, tol)
     max_iter = positive_int("max_iter", max_iter)
     G, C = gram_and_correlations(X, atoms, gram)  # C: the floor product
-    xnorm = np.einsum("ij,ij->i", X, X)
+    xnorm = row_energies(X)
     n = X.shape[0]
     index, value, count = empty_codes(n, S, X.dtype)
     _cosamp_rows(C, G, xnorm, X.dtype.type(tol), max_iter, index, value, count)

@@ -23,6 +23,7 @@ from ._common import (
 )
 from .lars import lasso_width
 from ._numba_cache import kernel
+from ._rows import row_energies
 
 __all__ = ["fista", "proximal_gradient"]
 
@@ -82,7 +83,7 @@ def proximal_gradient(X, atoms, *, lam, positive, init, max_iter, gap_tol, max_n
     width = lasso_width(k, max_nonzero=max_nonzero)
     Z0 = as_dense_init(init, n, k, X.dtype)
     G, C = gram_and_correlations(X, atoms, gram)  # C: the floor product
-    xnorm = np.einsum("ij,ij->i", X, X)
+    xnorm = row_energies(X)
     index, value, count = empty_codes(n, width, X.dtype)
     has_init = Z0 is not None
     Z0 = np.zeros((1, k), dtype=X.dtype) if Z0 is None else Z0

@@ -8,7 +8,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from ._common import SparseCodes, correlations
+from ._common import SparseCodes
+from ._rows import product, row_energies
 
 __all__ = ["hard", "hard_width"]
 
@@ -26,8 +27,8 @@ def hard(X: np.ndarray, atoms: np.ndarray) -> SparseCodes:
     SparseCodes
         Width 1: the nearest atom, value 1.
     """
-    wnorm = np.einsum("ij,ij->i", atoms, atoms)
-    score = correlations(X, atoms.T)
+    wnorm = row_energies(atoms)
+    score = product(X, atoms.T)
     score *= -2
     score += wnorm
     nearest = np.argmin(score, axis=1).astype(np.int32)

@@ -24,10 +24,11 @@ import numpy as np
 
 from ..errors import InputError, problem
 from ._common import (
-    SparseCodes, check_problem, correlations, lipschitz, pack_row, positive_int, soft,
+    SparseCodes, check_problem, lipschitz, pack_row, positive_int, soft,
 )
 from .lars import lasso_width
 from ._numba_cache import kernel
+from ._rows import product
 
 __all__ = ["LearnedEncoder", "fit_learned_encoder", "learned", "learned_width"]
 
@@ -131,7 +132,7 @@ def learned(X: np.ndarray, atoms: np.ndarray, *, encoder: LearnedEncoder,
     k = atoms.shape[0]
     width = lasso_width(k, max_nonzero=max_nonzero)
     dt = X.dtype
-    B = correlations(X, encoder.filters.astype(dt))  # (n, k): the floor-sized product
+    B = product(X, encoder.filters)  # (n, k): the floor-sized product
     n = X.shape[0]
     index = np.empty((n, width), dtype=np.int32)
     value = np.empty((n, width), dtype=dt)

@@ -14,6 +14,7 @@ import numpy as np
 from ._common import (SparseCodes, empty_codes, gram_and_correlations, greedy_options,
                       positive_int)
 from ._numba_cache import kernel
+from ._rows import row_energies
 
 __all__ = ["mp", "mp_width"]
 
@@ -52,7 +53,7 @@ def mp(
     S, tol = greedy_options(k, n_nonzero, tol)
     steps = 2 * S if max_steps is None else positive_int("max_steps", max_steps)
     G, C = gram_and_correlations(X, atoms, gram)  # C: the floor product
-    xnorm = np.einsum("ij,ij->i", X, X)
+    xnorm = row_energies(X)
     n = X.shape[0]
     index, value, count = empty_codes(n, S, X.dtype)
     _mp_rows(C, G, xnorm, X.dtype.type(tol), steps, index, value, count)

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ._rows import row_energies
 from ._common import (SparseCodes, empty_codes, gram_and_correlations, greedy_options,
                       orthogonal_pursuit)
 
@@ -61,7 +62,7 @@ def _pursue(X, atoms, n_nonzero, tol, gram, order_recursive: bool) -> SparseCode
     k = atoms.shape[0]
     S, tol = greedy_options(k, n_nonzero, tol)
     G, C = gram_and_correlations(X, atoms, gram)  # C: the floor product
-    xnorm = np.einsum("ij,ij->i", X, X)
+    xnorm = row_energies(X)
     n = X.shape[0]
     index, value, count = empty_codes(n, S, X.dtype)
     orthogonal_pursuit(C, G, xnorm, X.dtype.type(tol), order_recursive, index, value, count)

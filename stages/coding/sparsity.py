@@ -13,6 +13,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import InputError, problem
+from ._rows import product
 from ._common import check_problem, nonnegative_float, positive_int
 
 __all__ = ["lambda_for_sparsity"]
@@ -65,7 +66,7 @@ def lambda_for_sparsity(
     if method == "lars":
         # Rows whose path reaches this many atoms are past the target anyway.
         options.setdefault("max_nonzero", int(min(W.shape[0], max(4 * target, target + 8))))
-    C = X @ W.T
+    C = product(X, W.T)
     hi = float(np.max(C if options.get("positive") else np.abs(C)))
     if hi <= 0:
         raise InputError(problem("sample rows", "rows correlated with some atom",

@@ -13,7 +13,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from ._common import SparseCodes, correlation_blocks, nonnegative_float
+from ._common import SparseCodes, nonnegative_float
+from ._rows import product_blocks
 from ._numba_cache import kernel
 
 __all__ = ["threshold", "threshold_width"]
@@ -48,7 +49,7 @@ def threshold(
     index = np.empty((n, k), dtype=np.int32)
     value = np.empty((n, k), dtype=X.dtype)
     count = np.empty(n, dtype=np.int32)
-    for a, b, C in correlation_blocks(X, atoms.T):  # each block thresholded while cached
+    for a, b, C in product_blocks(X, atoms.T):  # each block thresholded while cached
         _threshold_rows(C, X.dtype.type(alpha), bool(split_sign), index[a:b], value[a:b],
                         count[a:b])
     return SparseCodes(index, value, count, 2 * k if split_sign else k)

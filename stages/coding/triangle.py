@@ -10,7 +10,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from ._common import SparseCodes, correlation_blocks
+from ._common import SparseCodes
+from ._rows import product_blocks, row_energies
 from ._numba_cache import kernel
 
 __all__ = ["triangle", "triangle_width"]
@@ -31,13 +32,13 @@ def triangle(X: np.ndarray, atoms: np.ndarray) -> SparseCodes:
         Width ``k``; slots in increasing atom order; values ``> 0``.
     """
     k = atoms.shape[0]
-    xnorm = np.einsum("ij,ij->i", X, X)
-    wnorm = np.einsum("ij,ij->i", atoms, atoms)
+    xnorm = row_energies(X)
+    wnorm = row_energies(atoms)
     n = X.shape[0]
     index = np.empty((n, k), dtype=np.int32)
     value = np.empty((n, k), dtype=X.dtype)
     count = np.empty(n, dtype=np.int32)
-    for a, b, C in correlation_blocks(X, atoms.T):  # each block used while cached
+    for a, b, C in product_blocks(X, atoms.T):  # each block used while cached
         _triangle_rows(C, xnorm[a:b], wnorm, index[a:b], value[a:b], count[a:b])
     return SparseCodes(index, value, count, k)
 
