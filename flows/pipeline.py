@@ -33,7 +33,7 @@ from atomline.stages.pictures import render_report
 from atomline.stages.scoring import SCORES
 from atomline.stages.pool import features_path, pool_task, prepare_pool
 from atomline.stages.train import train_task
-from atomline.stages.workspace import Workspace
+from atomline.stages.workspace import Workspace, fingerprint_params
 
 from .artifacts import ChunkProgress, artifact_key, publish_evaluation
 from .runners import blas_threads, check_reachable, plan_batches, task_runner
@@ -233,6 +233,13 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
     The pointer moves only after the candidate's features and evaluation are complete.
     Every decision is appended to the workspace (``Workspace.decisions``).
 
+    **Reruns.** A decision is stored with the run's key (:func:`nightly_run_key`: the
+    records' and labels' content and the options that can change the outcome). A run
+    whose key was decided already — a rerun after a kill at any point, or a run on
+    unchanged inputs — reports that decision (``already_decided`` holds its id) instead
+    of evaluating and deciding again; what the earlier run left unfinished (chunks, an
+    evaluation, pictures, the pointer move) is finished, and nothing is added twice.
+
     **Drift.** With ``retrain_on_drift`` and a promoted dictionary, rows ``drift_since:``
     are compared with rows ``:drift_since`` (``stages.drift``); below ``drift_threshold``
     nothing is retrained (outcome ``steady``) and the promoted dictionary's features are
@@ -258,8 +265,9 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
     State
         Calling the flow returns the report dict (the state's data): ``outcome`` (a key
         of :data:`OUTCOMES`), ``candidate`` and ``promoted`` evaluations, ``gate`` (the
-        comparison), the train/encode/pool manifests, ``drift``, ``pictures``, and the
-        promoted id after the run. With ``fail_on_regression`` a regression raises
+        comparison), the train/encode/pool manifests, ``drift``, ``pictures``, the
+        promoted id after the run, ``decision_id``, and ``already_decided`` (the id of
+        the recorded decision reported instead of a new one, when there was one). With ``fail_on_regression`` a regression raises
         instead; call with ``return_state=True`` to read the report from the state.
     """
     logger = get_run_logger()
@@ -272,7 +280,22 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
         raise InputError(problem("retrain", f"one of {sorted(RETRAIN)}", repr(retrain),
                                  "Pick a listed policy."))
     check_reachable(workspace)
-    previous = Workspace.open(workspace).promoted
+    ws = Workspace.open(workspace)
+    run_key = nightly_run_key(ws, records, dict(
+        labels=labels, n_atoms=n_atoms, patch_size=patch_size, stride=stride, method=method, coder=coder,
+        coder_options=coder_options, learner_options=learner_options, preprocessing=preprocessing,
+        sample_patches=sample_patches, reduce=reduce, split_sign=split_sign, regions=regions,
+        metric=metric, tolerance=tolerance, evaluation=evaluation, retrain_on_drift=retrain_on_drift,
+        drift_since=drift_since, drift_threshold=drift_threshold, on_bad_chunk=on_bad_chunk,
+        retrain=retrain))
+    recorded = _recorded_decision(ws, run_key)
+    # A run with these inputs was decided already (and maybe killed before it ended): replay
+    # it against the dictionary that was promoted when it started. Every step below finds
+    # its finished work (dictionary, chunks, evaluations, pictures) and redoes nothing.
+    previous = recorded["previous_id"] if recorded else ws.promoted
+    if recorded:
+        logger.info("these inputs were decided by %s (%s); reporting that decision",
+                    recorded["decision_id"], recorded["outcome"])
     if retrain == "never" and previous is None:
         raise NotFound(problem(f"workspace {workspace}", "a promoted dictionary (retrain='never')",
                                "none promoted", "Run once with retrain='if-missing' or 'always'."))
@@ -291,7 +314,7 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
     if retrain != "always" and previous is not None:
         report["encode"], report["pool"] = features_for(previous)
         report.update(candidate_id=None, outcome="kept")
-        return _finish(workspace, records, report, fail_on_regression)
+        return _finish(workspace, records, report, fail_on_regression, run_key, recorded)
     if retrain_on_drift and previous is not None and drift_since is not None:
         report["drift"] = detect_drift(workspace, records, previous, drift_since,
                                        threshold=drift_threshold, seed=seed)
@@ -301,7 +324,7 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
         if not report["drift"]["drifted"]:
             report["encode"], report["pool"] = features_for(previous)
             report.update(candidate_id=None, outcome="steady")
-            return _finish(workspace, records, report, fail_on_regression)
+            return _finish(workspace, records, report, fail_on_regression, run_key, recorded)
 
     trained = train_flow.fn(workspace, records, n_atoms=n_atoms, patch_size=patch_size, stride=stride,
                             method=method, coder=coder, coder_options=coder_options,
@@ -327,32 +350,78 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
     report["outcome"] = outcome
     if pictures:
         report["pictures"] = render_task(workspace, cand_eval["run_id"], class_names)
-    return _finish(workspace, records, report, fail_on_regression)
+    return _finish(workspace, records, report, fail_on_regression, run_key, recorded)
 
 
-def _finish(workspace: str, records: str, report: dict, fail_on_regression: bool) -> State:
-    """Promote when due, record the decision, publish artifacts, and end in a named state."""
+def nightly_run_key(ws: Workspace, records: str, options: dict) -> str:
+    """What a nightly run decides on, as a digest: the records' and labels' content and
+    every option that can change the decision (not workers, leases, pictures or alerts).
+
+    The promoted dictionary is not part of it: a run killed after moving the pointer must
+    find its own decision when rerun (see :func:`_recorded_decision`).
+    """
+    labels = options.get("labels") or records
+    return fingerprint_params({
+        "records": records, "records_fingerprint": ws.records_fingerprint(records),
+        "labels_fingerprint": ws.labels_fingerprint(labels) if ws.has_labels(labels) else None,
+        "options": options})
+
+
+def _recorded_decision(ws: Workspace, run_key: str) -> dict | None:
+    """The decision recorded for ``run_key`` if it still describes the workspace.
+
+    It does while the pointer is where that run found it or where it put it; a pointer
+    moved since by someone else makes it stale, and the run decides afresh.
+    """
+    recorded = ws.find_decision(run_key)
+    if recorded is None or ws.promoted not in (recorded["previous_id"], recorded["promoted_id"]):
+        return None
+    return recorded
+
+
+def _finish(workspace: str, records: str, report: dict, fail_on_regression: bool, run_key: str,
+            recorded: dict | None) -> State:
+    """Record the decision, promote when due, publish artifacts, and end in a named state.
+
+    The decision is written (``complete`` last) before the pointer moves, and the move is
+    checked before either: a run killed between them finds its decision when rerun and
+    only moves the pointer. A recorded decision is reported as it was, never decided again.
+    """
     logger = get_run_logger()
-    outcome = report["outcome"]
     ws = Workspace.open(workspace)
-    if outcome in ("first", "promoted"):
-        # promote() re-checks that the dictionary, its features and this evaluation of
-        # them are complete and consistent before it moves the pointer.
-        ws.promote(report["candidate_id"], evaluation=report["candidate"]["run_id"])
-    report["promoted_id"] = ws.promoted
     cand = report["candidate"]
-    ws.append_decision({
-        "records": records, "outcome": outcome, "candidate_id": report["candidate_id"],
-        "previous_id": report["previous_id"], "promoted_id": report["promoted_id"],
-        "promoted": outcome in ("first", "promoted"), "metric": report["metric"],
-        "tolerance": report["tolerance"], "gate": report["gate"], "drift": report["drift"],
-        "candidate_run": cand["run_id"] if cand else None,
-        "promoted_run": report["promoted"]["run_id"] if report["promoted"] else None,
-    })
+    if recorded:
+        report["outcome"] = recorded["outcome"]
+        report["decision_id"] = report["already_decided"] = recorded["decision_id"]
+    outcome = report["outcome"]
+    promoting = outcome in ("first", "promoted")
+    if promoting:
+        # The dictionary, its features and this evaluation of them must be complete and
+        # consistent; checked before anything is recorded.
+        ws.check_promotion(report["candidate_id"], evaluation=cand["run_id"])
+    if not recorded:
+        report["decision_id"] = ws.append_decision({
+            "records": records, "outcome": outcome, "candidate_id": report["candidate_id"],
+            "previous_id": report["previous_id"],
+            "promoted_id": report["candidate_id"] if promoting else report["previous_id"],
+            "promoted": promoting, "metric": report["metric"],
+            "tolerance": report["tolerance"], "gate": report["gate"], "drift": report["drift"],
+            "candidate_run": cand["run_id"] if cand else None,
+            "promoted_run": report["promoted"]["run_id"] if report["promoted"] else None,
+            "run_key": run_key,
+        })
+    if promoting and ws.promoted != report["candidate_id"]:
+        ws.promote(report["candidate_id"], evaluation=cand["run_id"])
+    report["promoted_id"] = ws.promoted
     message = f"{outcome}: {OUTCOMES[outcome]}"
+    if recorded:
+        message += f" (already decided by {recorded['decision_id']} on {recorded['created']})"
     lines = [f"**Outcome: {STATE_NAMES[outcome]}** — {OUTCOMES[outcome]}.",
              f"Candidate `{report['candidate_id']}`, previously promoted `{report['previous_id']}`, "
              f"promoted now `{report['promoted_id']}`."]
+    if recorded:
+        lines.append(f"These inputs were decided already by `{recorded['decision_id']}` "
+                     f"({recorded['created']}); that decision is reported, not made again.")
     gate = report["gate"]
     if gate:
         lines.append(f"Gate on {report['metric']}: candidate {gate['a']:.3f}, promoted {gate['b']:.3f}, "
@@ -376,7 +445,7 @@ def _finish(workspace: str, records: str, report: dict, fail_on_regression: bool
                    resource={"prefect.resource.id": f"atomline.workspace.{records}",
                              "atomline.workspace": str(workspace)},
                    payload={"candidate_id": report["candidate_id"], "promoted_id": report["promoted_id"],
-                            "gate": report["gate"]})
+                            "gate": report["gate"], "decision_id": report["decision_id"]})
     else:
         logger.info("nightly outcome: %s", message)
     state = Failed if outcome == "regression" and fail_on_regression else Completed

@@ -35,7 +35,9 @@ Protocol
 
 Each evaluation is appended to ``evaluations/<run-id>`` (never rewritten) with which
 dictionary, coder, pooling and data it measured, and its out-of-fold predictions, so two
-evaluations on the same rows can be compared later (:func:`compare_evaluations`, used by
+evaluations on the same rows can be compared later. It is keyed by what it measures
+(:func:`evaluation_key`): a rerun with the same inputs returns the complete evaluation
+with that key (``reused`` in the manifest) instead of adding a second one (:func:`compare_evaluations`, used by
 the nightly promotion gate, :func:`gate_decision`).
 
 ``evaluate_task`` is :func:`evaluate_features` as a Prefect task.
@@ -64,7 +66,7 @@ from .prep import Normaliser, PatchGeometry
 from .scoring import confusion, paired_bootstrap, scores_from_confusion
 from .workspace import Workspace, fingerprint_params, iter_row_chunks
 
-__all__ = ["evaluate_features", "evaluate_task", "cross_predict", "make_classifier",
+__all__ = ["evaluate_features", "evaluate_task", "evaluation_key", "cross_predict", "make_classifier",
            "baseline_atoms", "compare_evaluations", "gate_decision", "CLASSIFIERS",
            "BASELINES", "GATE_OUTCOMES"]
 
@@ -224,7 +226,9 @@ def evaluate_features(
         ``run_id``, ``dict_id``, ``n_rows``, ``folds``, ``coder``, ``pooling``; one
         score dict per feature set (``features``, ``raw``, …: accuracy,
         balanced_accuracy, macro_f1, fold_accuracy); ``versus`` (per baseline, per
-        score: difference features − baseline with its interval); ``learning_curve``.
+        score: difference features − baseline with its interval); ``learning_curve``;
+        ``reused`` (True when a complete evaluation with the same key was found and
+        returned instead of evaluating again).
     """
     ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
     unknown = sorted(set(baselines) - set(BASELINES))
@@ -248,6 +252,16 @@ def evaluate_features(
                                  str(y_all.shape[0]), "Add labels for these records (overwrite=True)."))
     lacking = _skipped_rows(out, n_records)
     rows = _labelled_rows(y_all, max_rows, seed, folds, exclude=lacking)
+    rows_fingerprint = fingerprint_params({"rows": rows.tolist(), "y": y_all[rows].tolist()})
+    protocol = {"classifier": classifier, "C": C, "folds": folds, "seed": seed,
+                "max_rows": max_rows, "n_boot": n_boot}
+    key = evaluation_key(records=records, labels=labels_name, dict_id=dict_id,
+                         records_fingerprint=ws.records_fingerprint(records),
+                         features_fingerprint=out.attrs["fingerprint"], rows_fingerprint=rows_fingerprint,
+                         protocol=protocol, baselines=baselines, learning_curve=learning_curve, tag=tag)
+    earlier = ws.find_evaluation(key)
+    if earlier is not None:
+        return _manifest(earlier, reused=True)
     classes, y = np.unique(y_all[rows], return_inverse=True)
     n_classes = classes.size
     splitter = StratifiedKFold(n_splits=folds, shuffle=True, random_state=seed)
@@ -288,12 +302,11 @@ def evaluate_features(
         "records_fingerprint": ws.records_fingerprint(records),
         "dictionary_fingerprint": cattrs["dictionary_fingerprint"],
         "features_fingerprint": fattrs["fingerprint"],
-        "rows_fingerprint": fingerprint_params({"rows": rows.tolist(), "y": y_all[rows].tolist()}),
+        "rows_fingerprint": rows_fingerprint,
         "coder": fattrs["coder"],
         "coder_options": cattrs["params"]["coder_options"],
         "pooling": fattrs["params"],
-        "protocol": {"classifier": classifier, "C": C, "folds": folds, "seed": seed,
-                     "max_rows": max_rows, "n_boot": n_boot},
+        "protocol": protocol,
         "classes": classes.tolist(),
         "n_rows": int(rows.size),
         "rows_lacking": int(lacking.size),
@@ -303,12 +316,41 @@ def evaluate_features(
         "versus": versus,
         "learning_curve": curve,
     }
-    run_id = ws.append_evaluation(attrs, arrays)
-    manifest = {"run_id": run_id, "dict_id": dict_id, "n_rows": attrs["n_rows"],
-                "rows_lacking": attrs["rows_lacking"], "folds": folds,
-                "coder": attrs["coder"], "pooling": attrs["pooling"], "tag": tag,
-                "versus": versus, "learning_curve": curve}
-    manifest.update(metrics)
+    run_id = ws.append_evaluation(attrs, arrays, key=key)
+    return _manifest(ws.evaluation(run_id), reused=False)
+
+
+def evaluation_key(*, records: str, labels: str, dict_id: str, records_fingerprint: str,
+                   features_fingerprint: str, rows_fingerprint: str, protocol: dict,
+                   baselines, learning_curve, tag: str) -> str:
+    """What an evaluation measures, as a digest: equal keys give equal evaluations.
+
+    The features' fingerprint covers the dictionary, the coder and the pooling; the rows'
+    fingerprint covers the labels, ``max_rows``, the seed and rows lacking features;
+    ``protocol`` holds the classifier options, folds, seed and bootstrap size. The
+    ``tag`` is part of it because the history reads candidates and promoted-dictionary
+    evaluations apart. BLAS threads are not: they do not change the result.
+
+    Returns
+    -------
+    str
+        16 hex digits (:func:`fingerprint_params`).
+    """
+    return fingerprint_params({
+        "records": records, "labels": labels, "dict_id": dict_id,
+        "records_fingerprint": records_fingerprint, "features_fingerprint": features_fingerprint,
+        "rows_fingerprint": rows_fingerprint, "protocol": protocol,
+        "baselines": [b for b in BASELINES if b in baselines],
+        "learning_curve": [float(s) for s in learning_curve], "tag": tag})
+
+
+def _manifest(attrs: dict, *, reused: bool) -> dict:
+    """The stage's manifest from a stored evaluation's attributes (new or found again)."""
+    manifest = {"run_id": attrs["run_id"], "dict_id": attrs["dict_id"], "n_rows": attrs["n_rows"],
+                "rows_lacking": attrs["rows_lacking"], "folds": attrs["protocol"]["folds"],
+                "coder": attrs["coder"], "pooling": attrs["pooling"], "tag": attrs["tag"],
+                "versus": attrs["versus"], "learning_curve": attrs["learning_curve"], "reused": reused}
+    manifest.update(attrs["metrics"])
     return manifest
 
 

@@ -311,24 +311,32 @@ def render_report(workspace: Workspace | str, run_id: str,
     if ev is None:
         raise InputError(problem(f"evaluations/{run_id}", "a complete evaluation", "none",
                                  "Pass a run id from the evaluation history."))
+    names = class_names or [str(c) for c in ev["classes"]]
+    wanted = list(PICTURES) if ev.get("learning_curve") else [n for n in PICTURES if n != "learning_curve"]
+    # A rerun (e.g. after a kill) keeps the pictures already stored whole and renders the
+    # rest; bytes stored without their attributes are not pictures and are replaced.
+    done = {p["name"]: p["path"] for p in ws.pictures() if p["report_id"] == run_id}
+    missing = [name for name in wanted if name not in done]
+    if not missing:
+        return [done[name] for name in wanted]
     stored = ws.load_dictionary(ev["dict_id"])
     geometry = PatchGeometry.from_attrs(stored.attrs["geometry"])
     usage = atom_usage(ws, ev["dict_id"], ev["records"])
-    names = class_names or [str(c) for c in ev["classes"]]
-    rendered = {
-        "atoms": atoms_png(stored.atoms, geometry, np.argsort(-usage, kind="stable"),
-                           title=f"atoms of {ev['dict_id']}"),
-        "usage": usage_png(usage, title=f"atom usage of {ev['dict_id']} on {ev['records']}"),
-        "history": history_png(history_points(ws, ev["records"]),
-                               title=f"accuracy over retrains, {ev['records']}"),
-        "confusion": confusion_png(ws.evaluation_arrays(run_id)["confusion_features"], names,
-                                   title=f"sparse features, {ev['dict_id']}"),
+    makers = {
+        "atoms": lambda: atoms_png(stored.atoms, geometry, np.argsort(-usage, kind="stable"),
+                                   title=f"atoms of {ev['dict_id']}"),
+        "usage": lambda: usage_png(usage, title=f"atom usage of {ev['dict_id']} on {ev['records']}"),
+        "history": lambda: history_png(history_points(ws, ev["records"]),
+                                       title=f"accuracy over retrains, {ev['records']}"),
+        "confusion": lambda: confusion_png(ws.evaluation_arrays(run_id)["confusion_features"], names,
+                                           title=f"sparse features, {ev['dict_id']}"),
+        "learning_curve": lambda: curve_png(ev["learning_curve"]),
     }
-    if ev.get("learning_curve"):
-        rendered["learning_curve"] = curve_png(ev["learning_curve"])
-    return [ws.save_picture(run_id, name, png, {"title": PICTURES[name], "width": SIZE[0],
-                                                "height": SIZE[1], "dict_id": ev["dict_id"]})
-            for name, png in rendered.items()]
+    for name in missing:
+        done[name] = ws.save_picture(run_id, name, makers[name](),
+                                     {"title": PICTURES[name], "width": SIZE[0], "height": SIZE[1],
+                                      "dict_id": ev["dict_id"]})
+    return [done[name] for name in wanted]
 
 
 def history_points(ws: Workspace, records: str) -> list[dict]:

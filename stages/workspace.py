@@ -41,6 +41,7 @@ import datetime as _dt
 import hashlib
 import json
 import os
+import time
 from dataclasses import dataclass
 from typing import Any, Iterator
 
@@ -50,7 +51,7 @@ import zarr
 from . import _leases
 from ._safety import check_array_metadata, require_attrs
 from .errors import (AtomlineError, BadChunk, FingerprintMismatch, InputError, LayoutError,
-                     NotFound, OutputExists, StoreFault, problem)
+                     LeaseHeld, NotFound, OutputExists, StoreFault, problem)
 
 __all__ = ["Workspace", "Output", "StoredDictionary", "LAYOUT_VERSION", "fingerprint_params",
            "BAD_CHUNK_CHOICES",
@@ -822,6 +823,10 @@ class Workspace:
                                       "Add the labels again (add_labels, overwrite=True)."))
         return np.asarray(node[:])
 
+    def labels_fingerprint(self, name: str) -> str:
+        """16 hex digits of the SHA-256 of the labels of ``data/<name>`` (as int64)."""
+        return hashlib.sha256(np.ascontiguousarray(self.labels(name), dtype=np.int64).tobytes()).hexdigest()[:16]
+
     def has_labels(self, name: str) -> bool:
         """Whether ``labels/<name>`` exists."""
         return f"labels/{name}" in self.root
@@ -1035,6 +1040,18 @@ class Workspace:
             Something the promotion rests on is missing or incomplete; the pointer is
             left where it was.
         """
+        self.check_promotion(dict_id, evaluation=evaluation)
+        with self.lease("promoted", run=f"promote {dict_id}"):  # one pointer move at a time
+            mark = self._mark()
+            mark["promoted"] = dict_id
+            self.root.attrs[_MARK] = mark
+
+    def check_promotion(self, dict_id: str, *, evaluation: str | None = None) -> None:
+        """Refuse, without moving anything, a promotion that :meth:`promote` would refuse.
+
+        The nightly gate checks first, records its decision, then moves the pointer, so a
+        run killed in between finds its decision and only has the move left to do.
+        """
         self.load_dictionary(dict_id)
         if evaluation is not None:
             attrs = self.evaluation(evaluation)
@@ -1051,10 +1068,6 @@ class Workspace:
                 raise FingerprintMismatch(problem(where, f"features fingerprint {out.attrs['fingerprint']}",
                                                   str(attrs.get("features_fingerprint")),
                                                   "The features changed since; evaluate again."))
-        with self.lease("promoted", run=f"promote {dict_id}"):  # one pointer move at a time
-            mark = self._mark()
-            mark["promoted"] = dict_id
-            self.root.attrs[_MARK] = mark
 
     # ------------------------------------------------------------------ outputs
     def create_output(self, path: str, *, n_rows: int, chunk_rows: int,
@@ -1158,22 +1171,42 @@ class Workspace:
         return path in self.root and "done" in self.root[_check_output_path(path)]
 
     # ------------------------------------------------------------------ evaluations
-    def append_evaluation(self, attrs: dict, arrays: dict[str, np.ndarray]) -> str:
+    def append_evaluation(self, attrs: dict, arrays: dict[str, np.ndarray], *, key: str | None = None) -> str:
         """Add one evaluation; evaluations are never rewritten.
+
+        The group is written under the ``evaluations`` lease: arrays, then attributes,
+        then ``complete``. An unfinished group left by a killed writer (no ``complete``)
+        is removed first, since under the lease no live writer can own it.
+
+        Parameters
+        ----------
+        attrs : dict
+            Plain JSON describing what was measured and the scores.
+        arrays : dict of str to ndarray
+        key : str, optional
+            What the evaluation measured (``evaluate.evaluation_key``), so a rerun can find
+            it with :meth:`find_evaluation` instead of adding a second one.
 
         Returns
         -------
         str
             The new run id.
         """
-        stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y%m%dT%H%M%S%f")
-        run_id = f"e{stamp}-{os.urandom(3).hex()}"
-        g = self.root.create_group(f"evaluations/{run_id}")
-        for key, value in arrays.items():
-            g.create_array(key, data=np.asarray(value))
-        g.attrs.update(_plain(dict(attrs, run_id=run_id, created=_now())))
-        g.attrs["complete"] = True
+        with self._append_lease("evaluations"):
+            self._remove_unfinished("evaluations")
+            stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y%m%dT%H%M%S%f")
+            run_id = f"e{stamp}-{os.urandom(3).hex()}"
+            g = self.root.create_group(f"evaluations/{run_id}")
+            for name, value in arrays.items():
+                g.create_array(name, data=np.asarray(value))
+            extra = {"key": key} if key is not None else {}
+            g.attrs.update(_plain(dict(attrs, run_id=run_id, created=_now(), **extra)))
+            g.attrs["complete"] = True
         return run_id
+
+    def find_evaluation(self, key: str) -> dict | None:
+        """The attributes of the latest complete evaluation with this ``key``, or ``None``."""
+        return next((e for e in reversed(self.evaluations()) if e.get("key") == key), None)
 
     def evaluations(self) -> list[dict]:
         """Attributes of every complete evaluation, oldest first."""
@@ -1271,7 +1304,7 @@ class Workspace:
         return holder
 
     def _lease_name(self, output: str) -> str:
-        if output == "promoted":
+        if output in ("promoted", "evaluations", "decisions"):
             return output
         parts = output.split("/") if isinstance(output, str) else []
         if len(parts) == 2 and parts[0] == "dictionaries":
@@ -1289,29 +1322,74 @@ class Workspace:
     def append_decision(self, attrs: dict) -> str:
         """Record one promotion-gate decision under ``decisions/<id>`` (append-only).
 
+        Written under the ``decisions`` lease, ``complete`` last; an unfinished group left
+        by a killed writer is removed first.
+
         Parameters
         ----------
         attrs : dict
-            Plain JSON: outcome, candidate and promoted ids, the evaluations compared.
+            Plain JSON: outcome, candidate and promoted ids, the evaluations compared,
+            and ``run_key`` (the nightly run's inputs, see :meth:`find_decision`).
 
         Returns
         -------
         str
             The new decision id.
         """
-        stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y%m%dT%H%M%S%f")
-        decision_id = f"g{stamp}-{os.urandom(3).hex()}"
-        g = self.root.require_group("decisions").create_group(decision_id)
-        g.attrs.update(_plain(dict(attrs, decision_id=decision_id, created=_now())))
-        g.attrs["complete"] = True
+        with self._append_lease("decisions"):
+            self._remove_unfinished("decisions")
+            stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y%m%dT%H%M%S%f")
+            decision_id = f"g{stamp}-{os.urandom(3).hex()}"
+            g = self.root.require_group("decisions").create_group(decision_id)
+            g.attrs.update(_plain(dict(attrs, decision_id=decision_id, created=_now())))
+            g.attrs["complete"] = True
         return decision_id
 
     def decisions(self) -> list[dict]:
-        """Attributes of every recorded gate decision, oldest first."""
+        """Attributes of every complete gate decision, oldest first (unfinished ones are ignored)."""
         if "decisions" not in self.root:
             return []
-        out = [dict(self.root[f"decisions/{k}"].attrs) for k in self.root["decisions"].group_keys()]
-        return sorted((a for a in out if a.get("complete")), key=lambda a: a["decision_id"])
+        out = []
+        for k in self.root["decisions"].group_keys():
+            try:
+                out.append(dict(self.root[f"decisions/{k}"].attrs))
+            except (ValueError, TypeError, KeyError):
+                continue  # unreadable metadata of an unfinished group: not a decision
+        return sorted((a for a in out if a.get("complete") is True), key=lambda a: a["decision_id"])
+
+    def find_decision(self, run_key: str) -> dict | None:
+        """The latest complete decision recorded with this ``run_key``, or ``None``."""
+        return next((d for d in reversed(self.decisions()) if d.get("run_key") == run_key), None)
+
+    def _append_lease(self, log: str) -> _leases.Lease:
+        """The lease of an append-only log (``evaluations`` or ``decisions``).
+
+        Held only while one entry is written (well under a second), so a second writer
+        waits for it a few seconds rather than failing at once.
+        """
+        for _ in range(100):
+            try:
+                return self.lease(log, run=f"append to {log} (pid {os.getpid()})")
+            except LeaseHeld:
+                time.sleep(0.1)
+        return self.lease(log, run=f"append to {log} (pid {os.getpid()})")
+
+    def _remove_unfinished(self, log: str) -> None:
+        """Delete the entries of ``log`` whose ``complete`` attribute was never written.
+
+        Call only while holding the log's lease: every writer holds it until its entry is
+        complete, so an unfinished entry seen then belongs to a writer that died.
+        """
+        if log not in self.root:
+            return
+        group = self.root[log]
+        for k in list(group.group_keys()):
+            try:
+                finished = group[k].attrs.get("complete") is True
+            except (ValueError, TypeError, KeyError):
+                finished = False  # metadata cut off mid-write
+            if not finished:
+                del group[k]
 
     # ------------------------------------------------------------------ pictures
     def save_picture(self, report_id: str, name: str, png: bytes, attrs: dict) -> str:
@@ -1338,6 +1416,8 @@ class Workspace:
         path = f"reports/{_check_name(report_id, 'report id')}/{_check_name(name, 'picture name')}"
         if not png.startswith(b"\x89PNG"):
             raise InputError(problem(path, "PNG bytes", f"{png[:8]!r}", "Render the picture as PNG."))
+        if path in self.root and self._picture_attrs(path) is None:
+            del self.root[path]  # bytes without attributes: cut off while being stored
         self._refuse_existing(path, False)
         self.root.require_group("reports").require_group(report_id)
         arr = self.root.create_array(path, data=np.frombuffer(png, dtype=np.uint8))
@@ -1352,10 +1432,20 @@ class Workspace:
         for report_id in sorted(self.root["reports"].group_keys()):
             group = self.root[f"reports/{report_id}"]
             for name in sorted(group.array_keys()):
-                arr = group[name]
-                out.append(dict(arr.attrs, path=f"reports/{report_id}/{name}", report_id=report_id,
-                                name=name, bytes=int(arr.shape[0])))
+                attrs = self._picture_attrs(f"reports/{report_id}/{name}")
+                if attrs is None:
+                    continue  # its writer died between the bytes and the attributes
+                out.append(dict(attrs, path=f"reports/{report_id}/{name}", report_id=report_id,
+                                name=name, bytes=int(group[name].shape[0])))
         return out
+
+    def _picture_attrs(self, path: str) -> dict | None:
+        """A stored picture's attributes, or ``None`` while they were never written."""
+        try:
+            attrs = dict(self.root[path].attrs)
+        except (ValueError, TypeError, KeyError):
+            return None
+        return attrs if attrs.get("media_type") == "image/png" else None
 
     def picture(self, path: str) -> bytes:
         """The PNG bytes of a stored picture (a path from :meth:`pictures`)."""

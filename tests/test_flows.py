@@ -37,9 +37,17 @@ def test_nightly_learns_encodes_pools_and_beats_raw(archive):
     assert cand["raw"]["accuracy"] < 0.45
     assert cand["features"]["accuracy"] > cand["raw"]["accuracy"] + 0.30
 
+    # The same inputs again: the recorded decision is reported, nothing is added twice.
+    ws = Workspace.open(archive)
+    history = (len(ws.evaluations()), len(ws.decisions()))
     again = nightly_flow(archive, "vib", **NIGHTLY)
-    assert again["outcome"] == "unchanged"
+    assert again["outcome"] == "first" and again["already_decided"] == report["decision_id"]
+    assert again["candidate"]["run_id"] == cand["run_id"] and again["candidate"]["reused"]
     assert again["encode"]["encoded"] == 0 and again["encode"]["skipped"] == 15
+    assert (len(ws.evaluations()), len(ws.decisions())) == history == (1, 1)
+    # Other options that reach the same dictionary are a new run: nothing to promote.
+    other = nightly_flow(archive, "vib", tolerance=0.02, **NIGHTLY)
+    assert other["outcome"] == "unchanged" and "already_decided" not in other
 
 
 def test_gate_keeps_the_better_dictionary(archive):

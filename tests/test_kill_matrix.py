@@ -145,9 +145,11 @@ def test_sigkill_matrix_then_rerun_gives_the_reference(stages_ready, tmp_path):
             assert _data(url, prefix) == _data(reference, prefix), f"{stage} / {point}: {prefix}"
         if stage in ("evaluate", "nightly"):
             evaluations = ws.evaluations()
-            # Append-only: an evaluation finished before the kill stays beside the rerun's.
-            assert len(evaluations) == (2 if "pointer" in point else 1), point
-            assert all(e["metrics"] == ref_eval["metrics"] for e in evaluations)
+            # One evaluation: one finished before the kill is found by its key, an
+            # unfinished one is removed by the rerun.
+            assert len(evaluations) == 1, point
+            assert list(ws.root["evaluations"].group_keys()) == [evaluations[0]["run_id"]], point
+            assert evaluations[0]["metrics"] == ref_eval["metrics"]
         if stage == "nightly":
             assert ws.promoted == dict_id
         assert not any(ws.lease_holder(p) for p in ("promoted", f"dictionaries/{dict_id}",
