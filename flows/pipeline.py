@@ -119,7 +119,7 @@ def encode_flow(workspace: str, records: str, dict_id: str | None = None, coder:
     check_reachable(workspace)
     dict_id = dict_id or _promoted(workspace)
     ws = Workspace.open(workspace)
-    with ws.lease(codes_path(dict_id, records), run=_run_name(), break_existing=break_lease):
+    with ws.lease(codes_path(dict_id, records), run=_run_name(), break_existing=break_lease) as held:
         prepared = prepare_encode(ws, records, dict_id, coder=coder,
                                   coder_options=coder_options, overwrite=overwrite)
         batches = plan_batches(prepared["pending"], workers, batches_per_worker)
@@ -128,7 +128,7 @@ def encode_flow(workspace: str, records: str, dict_id: str | None = None, coder:
         start = time.perf_counter()
         progress = ChunkProgress(records, len(prepared["pending"]), "encode")
         futures = [encode_task.submit(workspace, records, dict_id, b, blas_threads=blas_threads(workers),
-                                      on_bad_chunk=on_bad_chunk)
+                                      on_bad_chunk=on_bad_chunk, lease=held.info.token)
                    for b in batches]
         results = []
         for future in as_completed(futures):
@@ -152,11 +152,11 @@ def pool_flow(workspace: str, records: str, dict_id: str | None = None, reduce: 
     check_reachable(workspace)
     dict_id = dict_id or _promoted(workspace)
     ws = Workspace.open(workspace)
-    with ws.lease(features_path(dict_id, records), run=_run_name(), break_existing=break_lease):
+    with ws.lease(features_path(dict_id, records), run=_run_name(), break_existing=break_lease) as held:
         prepared = prepare_pool(ws, records, dict_id, reduce=reduce, split_sign=split_sign,
                                 regions=_tuple(regions), overwrite=overwrite)
         start = time.perf_counter()
-        futures = [pool_task.submit(workspace, records, dict_id, b)
+        futures = [pool_task.submit(workspace, records, dict_id, b, lease=held.info.token)
                    for b in plan_batches(prepared["pending"], workers, batches_per_worker)]
         results = [f.result() for f in futures]
         skipped = _record_skips(ws, features_path(dict_id, records), records)

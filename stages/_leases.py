@@ -4,7 +4,12 @@ A lease is one small JSON object in the workspace's own store, at
 ``.leases/<output path>.json`` (a hidden prefix Zarr does not treat as a node)::
 
     {"output": "codes/d-1/vib", "host": "node-3", "pid": 4121, "run": "nightly-owl",
-     "token": "9f…", "started": 1767225600.0, "heartbeat": 1767225630.0, "ttl": 120.0}
+     "token": "9f…", "started": 1767225600.0, "heartbeat": 1767225630.0, "ttl": 120.0,
+     "pid_start": 81234567}
+
+``pid_start`` is when the holder process started (clock ticks since boot, field 22 of
+``/proc/<pid>/stat``; ``null`` where there is no ``/proc``), so a lease whose PID was
+reused by a later process on the same host counts as dead.
 
 Taking a lease is a create-if-absent write followed by a read-back of the token:
 
@@ -28,11 +33,20 @@ A holder keeps its lease alive with a heartbeat thread (every ``ttl / 4`` second
 lease expires when its heartbeat is older than its TTL, or at once when its holder ran
 on this host and its process is gone (a killed run on a laptop need not wait out the
 TTL). An expired lease is broken by the next run; a live one only by an explicit break.
+
+A holder checks that the lease is still its own (same token in the store, heartbeat
+within the TTL) immediately before every chunk it commits (:func:`check_held`) and
+raises :class:`~atomline.stages.errors.LeaseLost` otherwise: a run paused past its TTL
+(a suspended laptop, a stopped container) whose lease was taken by another run commits
+nothing more. Its own expired lease counts as lost even when nobody took it yet, since
+another run may be breaking it at that moment. The heartbeat never renews a lease that
+is no longer its own, nor one that has expired.
 """
 
 from __future__ import annotations
 
 import datetime as _dt
+import errno
 import json
 import os
 import socket
@@ -44,7 +58,7 @@ from dataclasses import asdict, dataclass
 from zarr.core.buffer import default_buffer_prototype
 from zarr.core.sync import sync
 
-from .errors import LeaseHeld, problem
+from .errors import LeaseHeld, LeaseLost, NotWritable, problem
 
 PREFIX = ".leases"
 
@@ -61,13 +75,14 @@ class LeaseInfo:
     started: float
     heartbeat: float
     ttl: float
+    pid_start: int | None = None
 
     def expired(self, now: float | None = None) -> bool:
         """Whether the heartbeat is older than the TTL, or the holder process is gone."""
         now = time.time() if now is None else now
         if now - self.heartbeat > self.ttl:
             return True
-        return self.host == socket.gethostname() and not _pid_alive(self.pid)
+        return self.host == socket.gethostname() and not _pid_alive(self.pid, self.pid_start)
 
     def describe(self) -> str:
         """One line naming the holder and when it started."""
@@ -80,14 +95,34 @@ class LeaseInfo:
         return asdict(self)
 
 
-def _pid_alive(pid: int) -> bool:
+def _pid_alive(pid: int, started: int | None = None) -> bool:
+    """Whether process ``pid`` exists and, when ``started`` is known, is the same process."""
     try:
         os.kill(pid, 0)
     except ProcessLookupError:
         return False
     except PermissionError:  # exists, owned by someone else
-        return True
-    return True
+        pass
+    now_started = process_start(pid)
+    return started is None or now_started is None or now_started == started
+
+
+def process_start(pid: int) -> int | None:
+    """Start time of process ``pid`` in clock ticks since boot, or None where unknown.
+
+    Field 22 of ``/proc/<pid>/stat``; the command name (field 2) is in parentheses and may
+    itself hold spaces or parentheses, so fields are counted after its last ``)``.
+    """
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as fh:
+            text = fh.read().decode("ascii", "replace")
+    except OSError:
+        return None
+    fields = text[text.rfind(")") + 2:].split()
+    try:
+        return int(fields[19])  # fields after the name start at field 3
+    except (IndexError, ValueError):
+        return None
 
 
 def _key(root_path: str, output: str) -> str:
@@ -121,8 +156,11 @@ class _LeaseStore:
                 sync(fs._pipe_file(f"{self.store.path.rstrip('/')}/{key}", data, mode="create"))
             else:
                 sync(self.store.set_if_not_exists(key, _buffer(data)))
-        except OSError:  # FileExistsError, or a store's "precondition failed"
-            pass
+        except (PermissionError, _ReadOnly) as exc:
+            raise _not_writable(info.output, exc) from exc
+        except OSError as exc:  # FileExistsError, or a store's "precondition failed"
+            if getattr(exc, "errno", None) in _READ_ONLY_ERRNOS:
+                raise _not_writable(info.output, exc) from exc
         held = self.read(info.output)
         return held is not None and held.token == info.token
 
@@ -135,6 +173,27 @@ class _LeaseStore:
 
 def _buffer(data: bytes):
     return default_buffer_prototype().buffer.from_bytes(data)
+
+
+#: errno values meaning "this place cannot be written" (read-only file system, no permission).
+_READ_ONLY_ERRNOS = (errno.EROFS, errno.EACCES, errno.EPERM)
+
+
+class _ReadOnly(Exception):
+    """Placeholder so the except clause above also names zarr's read-only store error."""
+
+
+try:  # zarr raises its own ValueError subclass for a store opened read-only
+    from zarr.errors import ReadOnlyError as _ReadOnly  # type: ignore[no-redef]  # noqa: F811
+except ImportError:  # pragma: no cover - older zarr
+    pass
+
+
+def _not_writable(output: str, exc: BaseException) -> NotWritable:
+    return NotWritable(problem(f"lease on {output}", "a workspace this run can write",
+                               f"a read-only or protected store ({type(exc).__name__}: {exc})",
+                               "Run on a writable copy of the workspace, or fix the permissions "
+                               "or mount; reading commands (show, plots) work on a read-only one."))
 
 
 class Lease:
@@ -163,15 +222,25 @@ class Lease:
             self.renew()
 
     def renew(self) -> bool:
-        """Refresh the heartbeat; False (and ``lost``) if another run now holds the lease."""
+        """Refresh the heartbeat; False (and ``lost``) once the lease is no longer ours.
+
+        Not ours: another token (or none) is stored, or our own last heartbeat is older
+        than the TTL (another run may be breaking it right now). A lost lease is never
+        written again, so the run that took it keeps it.
+        """
         held = self._store.read(self.info.output)
-        if held is None or held.token != self.info.token:
-            self.lost = True
-            self._stop.set()
+        if (held is None or held.token != self.info.token
+                or time.time() - self.info.heartbeat > self.info.ttl):
+            self._lose()
             return False
         self.info = LeaseInfo(**{**self.info.to_json(), "heartbeat": time.time()})
         self._store.overwrite(self.info)
         return True
+
+    def _lose(self) -> None:
+        self.lost = True
+        self._stop.set()
+        self._registry.discard(self.info.token)
 
     def release(self) -> None:
         """Stop the heartbeat and delete the lease if it is still ours."""
@@ -194,7 +263,8 @@ def acquire(store: _LeaseStore, output: str, *, run: str, ttl: float, break_exis
             registry: set) -> Lease:
     """Take the lease of ``output`` or raise :class:`LeaseHeld` naming the holder."""
     now = time.time()
-    info = LeaseInfo(output, socket.gethostname(), os.getpid(), run, uuid.uuid4().hex, now, now, float(ttl))
+    info = LeaseInfo(output, socket.gethostname(), os.getpid(), run, uuid.uuid4().hex, now, now, float(ttl),
+                     process_start(os.getpid()))
     for _ in range(3):  # a broken lease may be re-taken by a third run in between
         if store.create(info):
             return Lease(store, info, registry)
@@ -219,3 +289,33 @@ def check_not_leased(store: _LeaseStore, output: str, registry: set) -> None:
         raise LeaseHeld(problem(output, "no other run writing this output",
                                 f"a lease held by {held.describe()}",
                                 "Wait for that run, or break its lease (--break-lease) if it is dead."))
+
+
+def check_held(store: _LeaseStore, output: str, token: str, registry: set) -> None:
+    """Refuse to commit to ``output`` unless the lease with ``token`` is still the writer's.
+
+    Called immediately before every chunk commit by a run holding a lease (one read of
+    the lease object). ``token`` is the holder's; in another process (process and Dask
+    workers) only the store tells whether it still holds.
+
+    Raises
+    ------
+    LeaseLost
+        The lease is gone, held by another run, or has expired (its last heartbeat is
+        older than its TTL).
+    """
+    held = store.read(output)
+    if held is not None and held.token == token and time.time() - held.heartbeat <= held.ttl:
+        return
+    registry.discard(token)
+    if held is None:
+        found = "no lease at all (it was broken)"
+    elif held.token != token:
+        found = f"it is now held by {held.describe()}"
+    else:
+        found = f"its last heartbeat {time.time() - held.heartbeat:.0f} s ago, past the TTL of {held.ttl:.0f} s"
+    raise LeaseLost(problem(
+        f"lease on {output}", "the write lease this run took, still its own", found,
+        "This run was paused or cut off too long and stopped writing: nothing more was "
+        "committed after the lease was lost, and finished chunks are kept. Let the run "
+        "holding it finish, or rerun to resume; raise the TTL if runs pause this long."))

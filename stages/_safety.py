@@ -11,13 +11,22 @@ Zarr format (v2 ``.zarray`` with ``dtype``/``filters``/``compressor``, or v3
 
 Attributes are plain JSON, so they cannot run code, but a store written by something
 else may hold the wrong types; :func:`require_attrs` names the key and the type found.
+
+A workspace in a local directory is opened through :class:`ContainedLocalStore`, which
+refuses every read and write of a key whose path resolves outside the workspace's root
+(a folder such as ``codes/`` replaced by a symbolic link to elsewhere), and of a key
+whose file is itself a symbolic link, even to another valid chunk inside: a chunk is the
+bytes stored under its own name, never a pointer to other bytes.
 """
 
 from __future__ import annotations
 
+import os
+from pathlib import Path
 from typing import Any
 
 import numpy as np
+from zarr.storage import LocalStore
 
 from .errors import LayoutError, UnsafeStore, problem
 
@@ -149,3 +158,78 @@ def require_attrs(attrs: dict, schema: dict[str, type | tuple[type, ...]], where
 
 
 _MISSING = object()
+
+
+class ContainedLocalStore(LocalStore):
+    """Zarr's local store, refusing keys that resolve outside its root or are links.
+
+    Every read (``get``, ``get_partial_values``, ``exists``, ``getsize``) and write
+    (``set``, ``set_if_not_exists``, ``delete``, ``delete_dir``) checks the key first
+    (:meth:`contained`); listing is Zarr's own (it does not descend into linked folders).
+
+    Raises
+    ------
+    UnsafeStore
+        From any of those calls, naming the key and where it leads.
+    """
+
+    def contained(self, key: str) -> Path:
+        """The file of ``key``, after checking it stays inside the root and is no link."""
+        path = self.root / key
+        root = os.path.realpath(self.root)
+        real = os.path.realpath(path)
+        if os.path.commonpath([root, real]) != root:
+            raise UnsafeStore(problem(f"{key} in workspace {self.root}",
+                                      "a path inside the workspace's directory",
+                                      f"one leading outside it, to {real}",
+                                      "Replace the symbolic link by the real folder (copy the "
+                                      "data in), or link a foreign array with link_records."))
+        if os.path.islink(path):
+            raise UnsafeStore(problem(f"{key} in workspace {self.root}",
+                                      "a regular file stored under its own name",
+                                      f"a symbolic link to {os.readlink(path)}",
+                                      "Replace the link by the file itself (or restore the chunk "
+                                      "from its source); atomline never follows links in a workspace."))
+        return path
+
+    async def get(self, key, prototype=None, byte_range=None):
+        self.contained(key)
+        return await super().get(key, prototype, byte_range)
+
+    async def get_partial_values(self, prototype, key_ranges):
+        key_ranges = list(key_ranges)
+        for key, _ in key_ranges:
+            self.contained(key)
+        return await super().get_partial_values(prototype, key_ranges)
+
+    async def exists(self, key: str) -> bool:
+        self.contained(key)
+        return await super().exists(key)
+
+    async def getsize(self, key: str) -> int:
+        self.contained(key)
+        return await super().getsize(key)
+
+    async def _set(self, key, value, exclusive: bool = False) -> None:
+        self.contained(key)
+        await super()._set(key, value, exclusive=exclusive)
+
+    async def delete(self, key: str) -> None:
+        self.contained(key)
+        await super().delete(key)
+
+    async def delete_dir(self, prefix: str) -> None:
+        self.contained(prefix.rstrip("/"))
+        await super().delete_dir(prefix)
+
+    def get_sync(self, key, *, prototype=None, byte_range=None):
+        self.contained(key)
+        return super().get_sync(key, prototype=prototype, byte_range=byte_range)
+
+    def set_sync(self, key, value) -> None:
+        self.contained(key)
+        super().set_sync(key, value)
+
+    def delete_sync(self, key: str) -> None:
+        self.contained(key)
+        super().delete_sync(key)

@@ -23,9 +23,9 @@ from prefect.cache_policies import NO_CACHE
 from threadpoolctl import threadpool_limits
 
 from .coding import code, code_outputs, code_width, gram
-from .errors import BadChunk, FingerprintMismatch, InputError, problem
+from .errors import BadChunk, FingerprintMismatch, InputError, problem, retry_if_transient
 from .prep import Normaliser, PatchGeometry
-from .workspace import BAD_CHUNK_CHOICES, Workspace, fingerprint_params, iter_row_chunks
+from .workspace import Workspace, check_bad_chunk_choice, fingerprint_params, iter_row_chunks
 
 __all__ = ["prepare_encode", "encode_chunks", "encode_task", "codes_path"]
 
@@ -126,6 +126,7 @@ def encode_chunks(
     blas_threads: int | None = None,
     storage_options: dict | None = None,
     on_bad_chunk: str = "stop",
+    lease: str | None = None,
 ) -> dict:
     """Encode a batch of row chunks into the prepared codes output.
 
@@ -147,6 +148,10 @@ def encode_chunks(
         :class:`~atomline.stages.errors.BadChunk` naming it, or mark its output chunk
         skipped (flag 2, fill values) and go on; the skipped rows are listed in the
         output's ``skipped`` attribute by the next :func:`prepare_encode` or flow.
+    lease : str, optional
+        Token of the codes output's write lease held by the calling run (the flows pass
+        it): each chunk is committed only while that lease is still the run's, else
+        :class:`~atomline.stages.errors.LeaseLost` (see :meth:`Workspace.output`).
 
     Returns
     -------
@@ -155,13 +160,11 @@ def encode_chunks(
         skipped now for bad input, "records": records coded, "patches": patches coded,
         "seconds": wall time}``
     """
-    if on_bad_chunk not in BAD_CHUNK_CHOICES:
-        raise InputError(problem("on_bad_chunk", f"one of {BAD_CHUNK_CHOICES}", repr(on_bad_chunk),
-                                 "Pick 'stop' or 'skip'."))
+    check_bad_chunk_choice(on_bad_chunk)
     start = time.perf_counter()
     ws = (workspace if isinstance(workspace, Workspace)
           else Workspace.open(workspace, storage_options=storage_options))
-    out = ws.output(codes_path(dict_id, records))
+    out = ws.output(codes_path(dict_id, records), lease=lease)
     attrs = out.attrs
     arr = ws.records(records)
     stored = ws.load_dictionary(dict_id)
@@ -230,4 +233,5 @@ def _pad(a: np.ndarray, width: int, fill: float) -> np.ndarray:
 
 
 #: The encode stage (one batch of chunks) as a Prefect task.
-encode_task = task(encode_chunks, name="encode-chunks", cache_policy=NO_CACHE, retries=2)
+encode_task = task(encode_chunks, name="encode-chunks", cache_policy=NO_CACHE, retries=2,
+                  retry_condition_fn=retry_if_transient)

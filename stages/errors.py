@@ -20,9 +20,13 @@ __all__ = [
     "NotFound",
     "BadChunk",
     "LeaseHeld",
+    "LeaseLost",
+    "NotWritable",
     "UnsafeStore",
     "StoreFault",
     "problem",
+    "worth_retrying",
+    "retry_if_transient",
 ]
 
 
@@ -83,9 +87,39 @@ class LeaseHeld(AtomlineError, RuntimeError):
     """Another run holds the write lease of an output."""
 
 
+class LeaseLost(AtomlineError, RuntimeError):
+    """A run's write lease expired or was taken by another run while it was writing."""
+
+
+class NotWritable(AtomlineError, PermissionError):
+    """The workspace cannot be written (read-only file system or mount, no permission)."""
+
+
 class UnsafeStore(LayoutError):
     """A store whose arrays could run code when read (object dtypes, pickling codecs)."""
 
 
 class StoreFault(AtomlineError, OSError):
     """The store failed while a chunk was being written (full disk, refused write)."""
+
+
+def worth_retrying(exc: BaseException | None) -> bool:
+    """Whether a failed attempt could succeed when simply run again.
+
+    atomline's own errors are deterministic (the same input gives the same refusal), so
+    retrying them only repeats the failure and its log; the exception is
+    :class:`StoreFault`, a store that failed while writing (a dropped connection, a
+    throttled request). Anything else (a lost worker, a network error) may be transient.
+    """
+    return isinstance(exc, StoreFault) or not isinstance(exc, AtomlineError)
+
+
+def retry_if_transient(task, task_run, state) -> bool:
+    """Prefect ``retry_condition_fn``: retry a failed task run only if :func:`worth_retrying`."""
+    exc = state.data if isinstance(state.data, BaseException) else None
+    if exc is None:
+        try:
+            state.result(raise_on_failure=True)
+        except BaseException as raised:  # the failure's own exception, as Prefect stored it
+            exc = raised
+    return worth_retrying(exc)

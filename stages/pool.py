@@ -24,10 +24,10 @@ import numpy as np
 from prefect import task
 from prefect.cache_policies import NO_CACHE
 
-from .errors import FingerprintMismatch, InputError, problem
+from .errors import BadChunk, FingerprintMismatch, InputError, problem, retry_if_transient
 from .encode import codes_path
 from .prep import PatchGeometry
-from .workspace import Workspace, fingerprint_params
+from .workspace import Workspace, check_bad_chunk_choice, fingerprint_params
 
 __all__ = ["pool_codes", "region_of_patches", "prepare_pool", "pool_chunks", "pool_task",
            "features_path"]
@@ -188,6 +188,8 @@ def pool_chunks(
     chunks: list[int],
     *,
     storage_options: dict | None = None,
+    on_bad_chunk: str = "stop",
+    lease: str | None = None,
 ) -> dict:
     """Pool a batch of chunks whose codes are finished.
 
@@ -198,16 +200,25 @@ def pool_chunks(
     chunks : list of int
         Record-chunk numbers, each owned by this call alone.
     storage_options : dict, optional
+    on_bad_chunk : {"stop", "skip"}
+        What to do with a codes chunk that cannot be decoded: raise
+        :class:`~atomline.stages.errors.BadChunk` naming it, or mark the features chunk
+        skipped (flag 2) and go on, as :func:`~atomline.stages.encode.encode_chunks` does.
+    lease : str, optional
+        Token of the features output's write lease held by the calling run (as for
+        :func:`~atomline.stages.encode.encode_chunks`).
 
     Returns
     -------
     dict
-        ``{"pooled", "skipped", "records", "seconds"}``
+        ``{"pooled", "skipped", "bad": chunks skipped now for unreadable codes,
+        "records", "seconds"}``
     """
+    check_bad_chunk_choice(on_bad_chunk)
     start = time.perf_counter()
     ws = (workspace if isinstance(workspace, Workspace)
           else Workspace.open(workspace, storage_options=storage_options))
-    out = ws.output(features_path(dict_id, records))
+    out = ws.output(features_path(dict_id, records), lease=lease)
     codes = ws.output(codes_path(dict_id, records))
     attrs, cattrs = out.attrs, codes.attrs
     if attrs["codes_fingerprint"] != cattrs["fingerprint"]:
@@ -219,7 +230,7 @@ def pool_chunks(
     region, R = region_of_patches(geometry.grid, params["regions"])
     P, rows_per_chunk = cattrs["patches_per_record"], cattrs["record_chunk_rows"]
     n_records = out.n_rows
-    pooled = skipped = done_records = 0
+    pooled = skipped = bad = done_records = 0
     (done, _), (coded, bad) = out.done_among(chunks), codes.done_among(chunks)
     for c in chunks:
         if c in done:
@@ -235,15 +246,24 @@ def pool_chunks(
             pooled += 1
             continue
         crow = slice(rows.start * P, rows.stop * P)
-        feats = pool_codes(codes.read("index", crow), codes.read("value", crow),
+        try:
+            index, value = codes.read("index", crow), codes.read("value", crow)
+        except BadChunk as exc:
+            if on_bad_chunk == "stop":
+                raise
+            out.skip(c, rows, str(exc))
+            bad += 1
+            continue
+        feats = pool_codes(index, value,
                            n_atoms=cattrs["n_atoms"], patch_region=region, n_regions=R,
                            reduce=params["reduce"], split_sign=params["split_sign"])
         out.commit(c, rows, {"values": feats})
         pooled += 1
         done_records += rows.stop - rows.start
-    return {"pooled": pooled, "skipped": skipped, "records": done_records,
+    return {"pooled": pooled, "skipped": skipped, "bad": bad, "records": done_records,
             "seconds": time.perf_counter() - start}
 
 
 #: The pool stage (one batch of chunks) as a Prefect task.
-pool_task = task(pool_chunks, name="pool-chunks", cache_policy=NO_CACHE, retries=2)
+pool_task = task(pool_chunks, name="pool-chunks", cache_policy=NO_CACHE, retries=2,
+                retry_condition_fn=retry_if_transient)

@@ -43,18 +43,18 @@ import json
 import os
 import time
 from dataclasses import dataclass
-from typing import Any, Iterator
+from typing import Any, Callable, Iterator
 
 import numpy as np
 import zarr
 
 from . import _leases
-from ._safety import check_array_metadata, require_attrs
+from ._safety import ContainedLocalStore, check_array_metadata, require_attrs
 from .errors import (AtomlineError, BadChunk, FingerprintMismatch, InputError, LayoutError,
                      LeaseHeld, NotFound, OutputExists, StoreFault, problem)
 
 __all__ = ["Workspace", "Output", "StoredDictionary", "LAYOUT_VERSION", "fingerprint_params",
-           "BAD_CHUNK_CHOICES",
+           "BAD_CHUNK_CHOICES", "check_bad_chunk_choice",
            "resolve_storage_options", "STORAGE_OPTIONS_ENV"]
 
 #: Version of the layout above. A store with a larger number was written by a newer
@@ -188,9 +188,12 @@ class Output:
         The attributes are missing or of the wrong types.
     """
 
-    def __init__(self, group: zarr.Group, path: str = ""):
+    def __init__(self, group: zarr.Group, path: str = "", guard: Callable[[], None] | None = None):
         self.group = group
         self.path = path or group.path
+        # Called immediately before every commit or skip: raises when this writer may no
+        # longer write (its lease was lost, or another live run holds the output).
+        self._guard = guard
         _check_group_members(group, self.path)  # raw metadata, before Zarr parses it
         arrays = dict(group.arrays())
         for name, arr in arrays.items():  # and the parsed form, before any chunk is decoded
@@ -258,8 +261,28 @@ class Output:
         return done, {c for c in done if flags[c - first] == _SKIPPED}
 
     def read(self, name: str, rows: slice) -> np.ndarray:
-        """Rows ``rows`` of the data array ``name`` (opened once with the output)."""
-        return np.asarray(self._data[name][rows])
+        """Rows ``rows`` of the data array ``name`` (opened once with the output).
+
+        Raises
+        ------
+        BadChunk
+            A chunk of those rows is missing or cannot be decoded (truncated, torn);
+            the message names the array, the chunk and its rows.
+        """
+        arr = self._data[name]
+        try:
+            return np.asarray(arr[rows])
+        except AtomlineError:
+            raise
+        except Exception as exc:
+            first = rows.start // int(arr.chunks[0])
+            last = (min(rows.stop, arr.shape[0]) - 1) // int(arr.chunks[0])
+            chunks = f"chunk {first}" if first == last else f"chunks {first}..{last}"
+            raise BadChunk(problem(
+                f"{self.path}/{name}, {chunks} (rows {rows.start}..{rows.stop - 1})",
+                "a chunk that decodes", f"{type(exc).__name__}: {str(exc)[:200]}",
+                "Rebuild the output that holds it (rerun its stage with overwrite), or rerun "
+                "with on_bad_chunk='skip' (--on-bad-chunk skip) to leave those rows out.")) from exc
 
     def pending(self) -> list[int]:
         """Chunk numbers still to do, in order."""
@@ -316,6 +339,8 @@ class Output:
         self._write(chunk, rows, fills, _SKIPPED)
 
     def _write(self, chunk: int, rows: slice, data: dict[str, np.ndarray], flag: int) -> None:
+        if self._guard is not None:
+            self._guard()
         try:
             _write_together([(self._data[name], rows, values) for name, values in data.items()])
             self._done[chunk] = flag
@@ -439,7 +464,7 @@ class Workspace:
         storage_options = resolve_storage_options(url, storage_options)
         kwargs = {"storage_options": storage_options} if storage_options else {}
         try:
-            root = zarr.open_group(store=url, mode="r+", **kwargs)
+            root = zarr.open_group(store=_store(url, "r+"), mode="r+", **kwargs)
         except (FileNotFoundError, zarr.errors.GroupNotFoundError) as exc:
             if not create:
                 raise NotFound(problem(f"workspace {url}", "an atomline workspace",
@@ -449,7 +474,7 @@ class Workspace:
                 raise LayoutError(problem(f"workspace {url}", "an empty place or a workspace",
                                           "other files there",
                                           "Choose a new directory or URL.")) from exc
-            root = zarr.open_group(store=url, mode="a", zarr_format=3, **kwargs)
+            root = zarr.open_group(store=_store(url, "a"), mode="a", zarr_format=3, **kwargs)
             root.attrs[_MARK] = {"layout": LAYOUT_VERSION, "promoted": None,
                                  "created": _now(), "version": _package_version()}
             for top in ("data", "labels", "dictionaries", "codes", "features", "evaluations"):
@@ -765,6 +790,8 @@ class Workspace:
                     raise BadChunk(problem(where, "a stored chunk", f"no object at {missing[0]!r}", fix))
         try:
             block = np.asarray(arr[rows])
+        except AtomlineError:  # a refusal (a linked chunk file) is not a bad chunk to skip
+            raise
         except Exception as exc:
             raise BadChunk(problem(where, "a chunk that decodes", f"{type(exc).__name__}: {exc}",
                                    fix)) from exc
@@ -1159,12 +1186,28 @@ class Workspace:
                                 "records_fingerprint": covers["fingerprint"]})
         return True
 
-    def output(self, path: str) -> Output:
-        """Open an existing output (its arrays and attributes are checked first)."""
+    def output(self, path: str, *, lease: str | None = None) -> Output:
+        """Open an existing output (its arrays and attributes are checked first).
+
+        Parameters
+        ----------
+        path : str
+        lease : str, optional
+            Token of the write lease the caller's run holds on ``path``
+            (``Lease.info.token``). Every commit first checks that this lease is still the
+            run's (:class:`~atomline.stages.errors.LeaseLost` otherwise); without a token,
+            every commit checks that no other live run holds the output
+            (:class:`~atomline.stages.errors.LeaseHeld`).
+        """
         node = self._node(_check_output_path(path), "output")
         if not isinstance(node, zarr.Group):
             raise LayoutError(problem(path, "an output group", "an array", "Rebuild the output."))
-        return Output(node, path)
+        store, name = self._lease_store(), self._lease_name(path)
+        if lease is None:
+            guard = lambda: _leases.check_not_leased(store, name, _HELD_LEASES)  # noqa: E731
+        else:
+            guard = lambda: _leases.check_held(store, name, lease, _HELD_LEASES)  # noqa: E731
+        return Output(node, path, guard)
 
     def has_output(self, path: str) -> bool:
         """Whether a fully created output group exists at ``path``."""
@@ -1535,6 +1578,13 @@ def check_records(arr: Any, where: str) -> None:
                                  "Add some records."))
 
 
+def check_bad_chunk_choice(on_bad_chunk: str) -> None:
+    """Refuse an ``on_bad_chunk`` that is not one of :data:`BAD_CHUNK_CHOICES`."""
+    if on_bad_chunk not in BAD_CHUNK_CHOICES:
+        raise InputError(problem("on_bad_chunk", f"one of {BAD_CHUNK_CHOICES}", repr(on_bad_chunk),
+                                 "Pick 'stop' or 'skip'."))
+
+
 def check_finite(block: np.ndarray, where: str, first_row: int) -> None:
     """Refuse NaN or Inf, naming the first bad row."""
     finite = np.isfinite(block.reshape(block.shape[0], -1)).all(axis=1)
@@ -1753,6 +1803,16 @@ def resolve_storage_options(url: str, given: dict | None = None) -> dict | None:
                                  "something else (value not shown: it may hold secrets)",
                                  'Set it to e.g. {"client_kwargs": {"endpoint_url": "..."}}.'))
     return options
+
+
+def _store(url: str, mode: str) -> Any:
+    """What Zarr opens for a workspace URL: a local directory through the store that keeps
+    every key inside it (:class:`._safety.ContainedLocalStore`), any other URL as it is."""
+    if "://" in url:
+        return url
+    from zarr.core.sync import sync
+
+    return sync(ContainedLocalStore.open(url, mode=mode))
 
 
 def _open_array(url: str, path: str, storage_options: dict | None) -> zarr.Array:

@@ -206,3 +206,131 @@ def test_cli_break_lease_flag(tmp_path, demo_small, capsys):
     assert cli.main(["encode", url, "vib", "--workers", "1", "--json", "--break-lease"]) == 0
     assert json.loads(capsys.readouterr().out)["encoded"] == 4
     assert ws.lease_holder(path) is None
+
+
+# ------------------------------------------------------------ a writer that lost its lease
+
+def test_lease_records_the_holder_process_start_so_a_reused_pid_counts_as_dead(ws):
+    from atomline.stages._leases import process_start
+
+    path = "codes/d-x/r"
+    me, started = os.getpid(), process_start(os.getpid())
+    assert started is not None  # Linux: /proc/<pid>/stat field 22
+    # This process is alive: a lease naming it with its own start time is live ...
+    info = LeaseInfo(path, socket.gethostname(), me, "alive", "t-1", time.time(), time.time(), 600.0, started)
+    _LeaseStore(ws.root.store, ws.root.store_path.path).overwrite(info)
+    with pytest.raises(LeaseHeld, match="alive"):
+        ws.lease(path)
+    # ... but one naming the same PID with another start time was left by an earlier
+    # process whose PID the system gave to this one: dead, taken over at once.
+    reused = LeaseInfo(path, socket.gethostname(), me, "earlier", "t-2", time.time(), time.time(), 600.0,
+                       started - 1)
+    _LeaseStore(ws.root.store, ws.root.store_path.path).overwrite(reused)
+    assert ws.lease_holder(path)["expired"] is True
+    with ws.lease(path, run="rerun") as held:
+        assert held.info.pid_start == started
+
+
+def _encode_ready(ws_url: str, X, rows: int = 80, chunk_rows: int = 10):
+    ws = Workspace.open(ws_url, create=True)
+    ws.add_records("vib", X[:rows], chunk_rows=chunk_rows)
+    dict_id = train.train_dictionary(ws, "vib", **TRAIN)["dict_id"]
+    prepared = encode.prepare_encode(ws, "vib", dict_id)
+    return ws, dict_id, prepared
+
+
+def _codes_bytes(ws: Workspace, path: str) -> dict:
+    return {k: v for k, v in store_snapshot(ws).items() if k.startswith(path + "/")}
+
+
+def test_commit_refused_once_the_lease_is_taken_by_another_run(tmp_path, demo_small):
+    from atomline.stages.errors import LeaseLost
+
+    X, _ = demo_small
+    ws, dict_id, prepared = _encode_ready(str(tmp_path / "ws.zarr"), X)
+    path = encode.codes_path(dict_id, "vib")
+    with ws.lease(path, run="first", ttl=600) as held:
+        encode.encode_chunks(ws, "vib", dict_id, prepared["pending"][:1], lease=held.info.token)
+        # Another run breaks the lease and takes it (as --break-lease would).
+        _plant(ws, path, host="elsewhere", pid=1, age=0, ttl=600, run="second run")
+        before = _codes_bytes(ws, path)
+        with pytest.raises(LeaseLost, match="second run") as caught:
+            encode.encode_chunks(ws, "vib", dict_id, prepared["pending"][1:], lease=held.info.token)
+        assert "nothing more was committed" in str(caught.value)
+        assert _codes_bytes(ws, path) == before
+        assert not held.renew() and held.lost  # the heartbeat leaves the other run's lease alone
+        assert ws.lease_holder(path)["run"] == "second run"
+    assert ws.lease_holder(path)["run"] == "second run"  # not deleted on exit either
+
+
+def test_own_lease_past_its_ttl_counts_as_lost(tmp_path, demo_small, monkeypatch):
+    from atomline.stages import _leases
+    from atomline.stages.errors import LeaseLost
+
+    X, _ = demo_small
+    ws, dict_id, prepared = _encode_ready(str(tmp_path / "ws.zarr"), X)
+    path = encode.codes_path(dict_id, "vib")
+    with ws.lease(path, run="first", ttl=60) as held:
+        stored = ws.lease_holder(path)
+        before = _codes_bytes(ws, path)
+        # An injected clock: the run was paused for two minutes, nobody took the lease yet.
+        later = time.time() + 120
+        monkeypatch.setattr(_leases.time, "time", lambda: later)
+        with pytest.raises(LeaseLost, match="past the TTL"):
+            encode.encode_chunks(ws, "vib", dict_id, prepared["pending"], lease=held.info.token)
+        assert _codes_bytes(ws, path) == before
+        assert not held.renew()  # an expired lease is not renewed ...
+        assert ws.lease_holder(path)["heartbeat"] == stored["heartbeat"]  # ... nor rewritten
+        monkeypatch.undo()
+
+
+_PAUSED_WRITER = """
+import sys
+from atomline.stages import encode
+from atomline.stages.workspace import Workspace
+
+url, dict_id, ttl = sys.argv[1], sys.argv[2], float(sys.argv[3])
+chunks = [int(c) for c in sys.argv[4].split(",")]
+ws = Workspace.open(url)
+with ws.lease(encode.codes_path(dict_id, "vib"), run="paused writer", ttl=ttl) as held:
+    for c in chunks:
+        sys.stdin.readline()  # one chunk per line the test sends
+        encode.encode_chunks(ws, "vib", dict_id, [c], lease=held.info.token)
+        print("committed", c, flush=True)
+"""
+
+
+@pytest.mark.slow
+def test_writer_paused_past_its_ttl_commits_nothing_after_another_run_took_the_lease(tmp_path, demo_small):
+    import signal
+
+    X, _ = demo_small
+    url = str(tmp_path / "ws.zarr")
+    ws, dict_id, prepared = _encode_ready(url, X)
+    path = encode.codes_path(dict_id, "vib")
+    ttl = 2.0
+    writer = subprocess.Popen([sys.executable, "-c", _PAUSED_WRITER, url, dict_id, str(ttl),
+                               ",".join(map(str, prepared["pending"]))],
+                              stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        for c in prepared["pending"][:2]:
+            writer.stdin.write("go\n")
+            writer.stdin.flush()
+            assert writer.stdout.readline().split() == ["committed", str(c)], writer.stderr.read()[-2000:]
+        writer.send_signal(signal.SIGSTOP)  # a suspended laptop, a stopped container
+        time.sleep(ttl + 1.0)
+        with ws.lease(path, run="second run") as second:  # the first's lease has expired
+            before = _codes_bytes(ws, path)
+            writer.send_signal(signal.SIGCONT)
+            writer.stdin.write("go\n" * len(prepared["pending"]))
+            writer.stdin.flush()
+            out, err = writer.communicate(timeout=120)
+            assert writer.returncode != 0 and "committed" not in out
+            assert "LeaseLost" in err and "second run" in err and "nothing more was committed" in err
+            assert _codes_bytes(ws, path) == before  # not one chunk written after the loss
+            assert ws.lease_holder(path)["token"] == second.info.token
+        assert ws.output(path).pending() == prepared["pending"][2:]
+    finally:
+        if writer.poll() is None:
+            writer.send_signal(signal.SIGCONT)
+            writer.kill()

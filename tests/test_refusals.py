@@ -331,3 +331,43 @@ def test_attributes_of_the_wrong_type_refused(copy_of, case, doc, change, read, 
     _rewrite_json(root / doc.format(d=dict_id, r=run_id), lambda m: change(m["attributes"], dict_id))
     with pytest.raises(LayoutError, match=words):
         read(ws, dict_id, run_id)
+
+
+# ---------------------------------------------------------------- links in a local workspace
+
+def _outside_tree(path: pathlib.Path) -> dict[str, bytes]:
+    return {str(p.relative_to(path)): p.read_bytes() for p in path.rglob("*") if p.is_file()}
+
+
+def test_folder_linked_outside_the_workspace_refused_on_read_and_write(copy_of, tmp_path):
+    root, dict_id, _ = copy_of
+    outside = tmp_path / "outside"
+    shutil.move(root / "codes", outside)  # the codes now live elsewhere, reached by a link
+    (root / "codes").symlink_to(outside, target_is_directory=True)
+    ws = Workspace.open(str(root))
+    before = _outside_tree(outside)
+    with pytest.raises(UnsafeStore, match="leading outside") as caught:  # read
+        ws.output(encode.codes_path(dict_id, "vib"))
+    assert "expected" in str(caught.value) and "found" in str(caught.value)
+    shutil.rmtree(outside / dict_id)  # and with nothing there yet: write
+    with pytest.raises(UnsafeStore, match="leading outside"):
+        encode.prepare_encode(ws, "vib", dict_id)
+    # Not one file written outside (only the codes group's own metadata is there).
+    assert _outside_tree(outside) == {k: v for k, v in before.items() if not k.startswith(dict_id)}
+
+
+@pytest.mark.parametrize("on_bad_chunk", ["stop", "skip"])
+def test_chunk_file_replaced_by_a_link_refused_naming_it(copy_of, on_bad_chunk):
+    root, dict_id, _ = copy_of
+    chunk = root / "data" / "vib" / "c" / "1" / "0"
+    chunk.unlink()
+    chunk.symlink_to(root / "data" / "vib" / "c" / "0" / "0")  # another valid chunk, inside
+    ws = Workspace.open(str(root))
+    with pytest.raises(UnsafeStore, match="data/vib/c/1/0.*symbolic link"):
+        ws.read_chunk("vib", 1)
+    encode.prepare_encode(ws, "vib", dict_id, overwrite=True)
+    path = encode.codes_path(dict_id, "vib")
+    # Refused, not a bad chunk to skip: a link is never read as data.
+    with pytest.raises(UnsafeStore, match="data/vib/c/1/0"):
+        encode.encode_chunks(ws, "vib", dict_id, [1], on_bad_chunk=on_bad_chunk)
+    assert ws.output(path).pending() == [0, 1, 2, 3]
