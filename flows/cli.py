@@ -148,7 +148,7 @@ def _parser() -> argparse.ArgumentParser:
     sp.add_argument("--dictionary", help="dictionary id (default: the promoted one)")
     _pool_options(sp)
     sp.add_argument("--overwrite", action="store_true", help="replace features made with other options")
-    _fault_options(sp, bad_chunks=False)
+    _fault_options(sp)
     _runner_options(sp)
 
     sp = command("evaluate", _run_evaluate, _describe_evaluation,
@@ -156,6 +156,7 @@ def _parser() -> argparse.ArgumentParser:
     _ws_name(sp)
     sp.add_argument("--dictionary", help="dictionary id (default: the promoted one)")
     _evaluation_options(sp)
+    _bad_chunk_option(sp)
     _runner_options(sp)
 
     sp = command("nightly", _run_nightly, _describe_nightly,
@@ -195,9 +196,13 @@ def _fault_options(sp: argparse.ArgumentParser, bad_chunks: bool = True) -> None
                     help="take the output's write lease even if another run holds it "
                          "(only when you know that run is dead; finished chunks are kept)")
     if bad_chunks:
-        sp.add_argument("--on-bad-chunk", choices=("stop", "skip"), default="stop",
-                        help="a missing or unreadable input chunk stops the run, or is skipped "
-                             "and listed in the output's attributes (default: %(default)s)")
+        _bad_chunk_option(sp)
+
+
+def _bad_chunk_option(sp: argparse.ArgumentParser) -> None:
+    sp.add_argument("--on-bad-chunk", choices=("stop", "skip"), default="stop",
+                    help="a missing or unreadable input chunk stops the run, or is skipped "
+                         "and its rows left out and listed (default: %(default)s)")
 
 
 def _ws_name(sp: argparse.ArgumentParser) -> None:
@@ -406,7 +411,7 @@ def _run_pool(args):
     with _progress(args.workspace, args.name, ("features",), args.json):
         return _with_runner(pool_flow, args)(args.workspace, args.name, dict_id=args.dictionary,
                                              workers=args.workers, overwrite=args.overwrite,
-                                             break_lease=args.break_lease,
+                                             on_bad_chunk=args.on_bad_chunk, break_lease=args.break_lease,
                                              batches_per_worker=args.batches_per_worker,
                                              **_pool_params(args))
 
@@ -416,7 +421,7 @@ def _run_evaluate(args):
 
     with _progress(args.workspace, args.name, (), args.json, status="evaluating"):
         return _with_runner(evaluate_flow, args)(args.workspace, args.name, dict_id=args.dictionary,
-                                                 **_evaluation_params(args))
+                                                 on_bad_chunk=args.on_bad_chunk, **_evaluation_params(args))
 
 
 def _run_nightly(args):

@@ -147,8 +147,10 @@ def encode_flow(workspace: str, records: str, dict_id: str | None = None, coder:
 @flow(name="atomline-pool", task_runner=task_runner("threads", 2))
 def pool_flow(workspace: str, records: str, dict_id: str | None = None, reduce: str = "max",
               split_sign: bool = True, regions: int | list[int] = 4, workers: int = 2,
-              batches_per_worker: int = 4, overwrite: bool = False, break_lease: bool = False) -> dict:
-    """Pool the codes of every pending chunk into per-record features (under a write lease)."""
+              batches_per_worker: int = 4, overwrite: bool = False, on_bad_chunk: str = "stop",
+              break_lease: bool = False) -> dict:
+    """Pool the codes of every pending chunk into per-record features (under a write lease);
+    ``on_bad_chunk`` as for ``encode_flow``, for codes chunks that cannot be decoded."""
     check_reachable(workspace)
     dict_id = dict_id or _promoted(workspace)
     ws = Workspace.open(workspace)
@@ -156,7 +158,8 @@ def pool_flow(workspace: str, records: str, dict_id: str | None = None, reduce: 
         prepared = prepare_pool(ws, records, dict_id, reduce=reduce, split_sign=split_sign,
                                 regions=_tuple(regions), overwrite=overwrite)
         start = time.perf_counter()
-        futures = [pool_task.submit(workspace, records, dict_id, b, lease=held.info.token)
+        futures = [pool_task.submit(workspace, records, dict_id, b, on_bad_chunk=on_bad_chunk,
+                                    lease=held.info.token)
                    for b in plan_batches(prepared["pending"], workers, batches_per_worker)]
         results = [f.result() for f in futures]
         skipped = _record_skips(ws, features_path(dict_id, records), records)
@@ -172,17 +175,20 @@ def evaluate_flow(workspace: str, records: str, dict_id: str | None = None, labe
                   folds: int = 5, classifier: str = "logistic", C: float = 1.0, max_rows: int = 20_000,
                   seed: int = 0, baselines: list[str] | None = None,
                   learning_curve: list[float] | None = None, n_boot: int = 2000, tag: str = "",
-                  pictures: bool = True, class_names: list[str] | None = None) -> dict:
+                  pictures: bool = True, class_names: list[str] | None = None,
+                  on_bad_chunk: str = "stop") -> dict:
     """Score a linear classifier on the pooled features and on the baselines.
 
     ``baselines`` and ``learning_curve`` default to the evaluate stage's
     (``BASELINES``, ``DEFAULT_CURVE``); pass ``[]`` for none. Creates the markdown and
     table artifacts and, with ``pictures``, stores the pictures in the workspace.
+    ``on_bad_chunk="skip"`` leaves out the rows of features chunks that do not decode.
     """
     dict_id = dict_id or _promoted(workspace)
     manifest = evaluate_task(workspace, records, dict_id, labels=labels,
                              **_evaluation_options(folds, classifier, C, max_rows, seed, baselines,
-                                                   learning_curve, n_boot), tag=tag)
+                                                   learning_curve, n_boot), tag=tag,
+                             on_bad_chunk=on_bad_chunk)
     paths = render_task(workspace, manifest["run_id"], class_names) if pictures else []
     manifest["pictures"] = paths
     publish_evaluation(Workspace.open(workspace), manifest, records,
@@ -306,7 +312,7 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
                              break_lease=break_lease)
         pooled = pool_flow.fn(workspace, records, dict_id=dict_id, reduce=reduce, split_sign=split_sign,
                               regions=regions, workers=workers, batches_per_worker=batches_per_worker,
-                              break_lease=break_lease)
+                              on_bad_chunk=on_bad_chunk, break_lease=break_lease)
         return enc, pooled
 
     report = {"previous_id": previous, "metric": metric, "tolerance": tolerance, "drift": None,
@@ -332,7 +338,8 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
                             sample_patches=sample_patches, seed=seed, break_lease=break_lease)
     candidate_id = trained["dict_id"]
     encoded, pooled = features_for(candidate_id)
-    cand_eval = evaluate_task(workspace, records, candidate_id, tag="candidate", **evaluation)
+    cand_eval = evaluate_task(workspace, records, candidate_id, tag="candidate", on_bad_chunk=on_bad_chunk,
+                              **evaluation)
     report.update(candidate_id=candidate_id, train=trained, encode=encoded, pool=pooled,
                   candidate=cand_eval)
     if previous is None:
@@ -341,7 +348,7 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
         outcome = "unchanged"
     else:
         features_for(previous)
-        prev_eval = evaluate_task(workspace, records, previous, tag="promoted",
+        prev_eval = evaluate_task(workspace, records, previous, tag="promoted", on_bad_chunk=on_bad_chunk,
                                   **dict(evaluation, baselines=(), learning_curve=()))
         comparison = compare_evaluations(workspace, cand_eval["run_id"], prev_eval["run_id"],
                                          n_boot=n_boot, seed=seed)

@@ -60,11 +60,11 @@ from threadpoolctl import threadpool_limits
 
 from .coding import code, gram
 from .encode import codes_path
-from .errors import InputError, problem
+from .errors import BadChunk, InputError, problem
 from .pool import features_path, pool_codes, region_of_patches
 from .prep import Normaliser, PatchGeometry
 from .scoring import confusion, paired_bootstrap, scores_from_confusion
-from .workspace import Workspace, fingerprint_params, iter_row_chunks
+from .workspace import Workspace, check_bad_chunk_choice, fingerprint_params, iter_row_chunks
 
 __all__ = ["evaluate_features", "evaluate_task", "evaluation_key", "cross_predict", "make_classifier",
            "baseline_atoms", "compare_evaluations", "gate_decision", "CLASSIFIERS",
@@ -187,6 +187,7 @@ def evaluate_features(
     n_boot: int = 2000,
     tag: str = "",
     blas_threads: int | None = 1,
+    on_bad_chunk: str = "stop",
 ) -> dict:
     """Evaluate pooled features against the baselines and append the result.
 
@@ -219,6 +220,11 @@ def evaluate_features(
         The classifiers' matrices are small, so one thread loses little and avoids
         oversubscribing cores shared with other workers (on the 2-core test machine under
         load, one evaluation of the digits took ~3 s with one thread and ~30 s with two).
+    on_bad_chunk : {"stop", "skip"}
+        A features chunk that cannot be decoded raises
+        :class:`~atomline.stages.errors.BadChunk` naming it, or (``"skip"``) its rows are
+        left out like those of skipped chunks and counted in ``rows_lacking``. A bad
+        records chunk read for a baseline always stops, naming it.
 
     Returns
     -------
@@ -230,6 +236,7 @@ def evaluate_features(
         ``reused`` (True when a complete evaluation with the same key was found and
         returned instead of evaluating again).
     """
+    check_bad_chunk_choice(on_bad_chunk)
     ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
     unknown = sorted(set(baselines) - set(BASELINES))
     if unknown:
@@ -251,6 +258,8 @@ def evaluate_features(
         raise InputError(problem(f"labels {labels_name!r}", f"{n_records} labels (one per record)",
                                  str(y_all.shape[0]), "Add labels for these records (overwrite=True)."))
     lacking = _skipped_rows(out, n_records)
+    if on_bad_chunk == "skip":  # leave out the rows of features chunks that do not decode
+        lacking = np.union1d(lacking, _unreadable_rows(out))
     rows = _labelled_rows(y_all, max_rows, seed, folds, exclude=lacking)
     rows_fingerprint = fingerprint_params({"rows": rows.tolist(), "y": y_all[rows].tolist()})
     protocol = {"classifier": classifier, "C": C, "folds": folds, "seed": seed,
@@ -459,27 +468,48 @@ def _labelled_rows(y: np.ndarray, max_rows: int, seed: int, folds: int,
     return np.sort(rows)
 
 
-def _row_blocks(arr, rows: np.ndarray) -> Iterator[np.ndarray]:
-    """The given sorted rows of ``arr``, one block per row chunk that holds some."""
-    for _, sl in iter_row_chunks(arr):
+def _row_blocks(arr, rows: np.ndarray, read) -> Iterator[np.ndarray]:
+    """The given sorted rows of ``arr``, one block per row chunk that holds some.
+
+    ``read(chunk, rows_slice)`` reads one chunk and names it if it is bad
+    (``Workspace.read_chunk`` for records, ``Output.read`` for features).
+    """
+    for c, sl in iter_row_chunks(arr):
         inside = rows[(rows >= sl.start) & (rows < sl.stop)]
         if inside.size:
-            yield np.asarray(arr[sl])[inside - sl.start]
+            yield read(c, sl)[inside - sl.start]
 
 
-def _take_rows(arr, rows: np.ndarray) -> np.ndarray:
+def _take_rows(arr, rows: np.ndarray, read) -> np.ndarray:
     """Read the given sorted rows chunk by chunk (never the whole array at once)."""
-    return np.concatenate(list(_row_blocks(arr, rows)))
+    return np.concatenate(list(_row_blocks(arr, rows, read)))
+
+
+def _records_reader(ws: Workspace, records: str, arr):
+    return lambda c, sl: ws.read_chunk(records, c, arr)
+
+
+def _unreadable_rows(out) -> np.ndarray:
+    """Rows of the features' chunks that cannot be decoded (one read of every chunk)."""
+    arr = out.group["values"]
+    parts = []
+    for _, sl in iter_row_chunks(arr):
+        try:
+            out.read("values", sl)
+        except BadChunk:
+            parts.append(np.arange(sl.start, sl.stop))
+    return np.concatenate(parts) if parts else np.zeros(0, dtype=np.int64)
 
 
 def _feature_set(ws: Workspace, name: str, records: str, dict_id: str, rows: np.ndarray,
                  seed: int) -> np.ndarray:
     """ndarray of shape (len(rows), F_name), float32: one feature set of the rows."""
     if name == "features":
-        return _take_rows(ws.output(features_path(dict_id, records)).group["values"], rows)
+        out = ws.output(features_path(dict_id, records))
+        return _take_rows(out.group["values"], rows, lambda c, sl: out.read("values", sl))
     arr = ws.records(records)
     if name == "raw":
-        return _take_rows(arr, rows).reshape(rows.size, -1).astype(np.float32)
+        return _take_rows(arr, rows, _records_reader(ws, records, arr)).reshape(rows.size, -1).astype(np.float32)
     return _dictionary_baseline(ws, name, arr, records, dict_id, rows, seed)
 
 
@@ -495,7 +525,8 @@ def _dictionary_baseline(ws: Workspace, kind: str, arr, records: str, dict_id: s
     P = geometry.patches_per_record
     n_sample_rows = min(rows.size, max(1, -(-_BASELINE_SAMPLE // P) * 2))
     sample_rows = np.sort(rng.choice(rows, size=n_sample_rows, replace=False))
-    patches = normaliser.apply(geometry.extract(_take_rows(arr, sample_rows)).astype(np.float64))
+    patches = normaliser.apply(geometry.extract(
+        _take_rows(arr, sample_rows, _records_reader(ws, records, arr))).astype(np.float64))
     if patches.shape[0] > _BASELINE_SAMPLE:
         patches = patches[rng.choice(patches.shape[0], _BASELINE_SAMPLE, replace=False)]
     atoms = baseline_atoms(kind, patches, stored.atoms.shape[0], seed)
@@ -504,7 +535,7 @@ def _dictionary_baseline(ws: Workspace, kind: str, arr, records: str, dict_id: s
         options["n_nonzero"] = min(options["n_nonzero"], atoms.shape[0])
     region, R = region_of_patches(geometry.grid, pooling["regions"])
     blocks = []
-    for block in _row_blocks(arr, rows):
+    for block in _row_blocks(arr, rows, _records_reader(ws, records, arr)):
         X = normaliser.apply(geometry.extract(block))
         W = atoms.astype(X.dtype)
         extra = {"gram": gram(W)} if coder == "omp" else {}

@@ -230,7 +230,7 @@ def pool_chunks(
     region, R = region_of_patches(geometry.grid, params["regions"])
     P, rows_per_chunk = cattrs["patches_per_record"], cattrs["record_chunk_rows"]
     n_records = out.n_rows
-    pooled = skipped = bad = done_records = 0
+    pooled = skipped = unreadable = done_records = 0
     (done, _), (coded, bad) = out.done_among(chunks), codes.done_among(chunks)
     for c in chunks:
         if c in done:
@@ -252,7 +252,7 @@ def pool_chunks(
             if on_bad_chunk == "stop":
                 raise
             out.skip(c, rows, str(exc))
-            bad += 1
+            unreadable += 1
             continue
         feats = pool_codes(index, value,
                            n_atoms=cattrs["n_atoms"], patch_region=region, n_regions=R,
@@ -260,7 +260,7 @@ def pool_chunks(
         out.commit(c, rows, {"values": feats})
         pooled += 1
         done_records += rows.stop - rows.start
-    return {"pooled": pooled, "skipped": skipped, "bad": bad, "records": done_records,
+    return {"pooled": pooled, "skipped": skipped, "bad": unreadable, "records": done_records,
             "seconds": time.perf_counter() - start}
 
 

@@ -174,3 +174,105 @@ def test_zero_and_constant_records_give_finite_codes(memory_url, demo_small, sca
     pp = pool.prepare_pool(ws, "vib", dict_id, regions=2)
     pool.pool_chunks(ws, "vib", dict_id, pp["pending"])
     assert np.isfinite(ws.output(pool.features_path(dict_id, "vib")).group["values"][:]).all()
+
+
+# ------------------------------------------------------------ corrupt intermediate outputs
+
+def _truncate(path: str) -> None:
+    with open(path, "r+b") as fh:
+        fh.truncate(max(1, os.path.getsize(path) // 2))
+
+
+@pytest.fixture
+def pooled(prepared, tmp_path):
+    """A private workspace with the codes of every chunk (from the reference) pooled."""
+    _, reference, dict_id = prepared
+    url = _copy(reference, tmp_path)
+    pp = pool.prepare_pool(url, "vib", dict_id, regions=2)
+    pool.pool_chunks(url, "vib", dict_id, pp["pending"])
+    return url, dict_id
+
+
+@pytest.mark.parametrize("array", ["index", "value"])
+def test_truncated_codes_chunk_stops_pool_naming_array_and_chunk(pooled, array):
+    url, dict_id = pooled
+    _truncate(os.path.join(url, "codes", dict_id, "vib", array, "c", "3", "0"))
+    pp = pool.prepare_pool(url, "vib", dict_id, regions=2, overwrite=True)
+    with pytest.raises(BadChunk) as caught:
+        pool.pool_chunks(url, "vib", dict_id, pp["pending"])
+    message = str(caught.value)
+    assert f"codes/{dict_id}/vib/{array}, chunk 3 " in message and "--on-bad-chunk skip" in message
+    assert Workspace.open(url).output(pool.features_path(dict_id, "vib")).pending() == [3, 4, 5, 6, 7]
+
+
+def test_truncated_codes_chunk_skipped_by_pool_and_left_out_by_evaluate(pooled):
+    url, dict_id = pooled
+    _truncate(os.path.join(url, "codes", dict_id, "vib", "value", "c", "3", "0"))
+    pp = pool.prepare_pool(url, "vib", dict_id, regions=2, overwrite=True)
+    result = pool.pool_chunks(url, "vib", dict_id, pp["pending"], on_bad_chunk="skip")
+    assert result["bad"] == 1 and result["pooled"] == 7
+    again = pool.prepare_pool(url, "vib", dict_id, regions=2)
+    assert again["pending"] == [] and again["skipped_rows"] == 20
+    report = evaluate.evaluate_features(url, "vib", dict_id, baselines=(), learning_curve=())
+    assert report["rows_lacking"] == 20 and report["n_rows"] == 140
+
+
+def test_corrupt_features_chunk_named_by_evaluate_or_left_out(pooled):
+    url, dict_id = pooled
+    _truncate(os.path.join(url, "features", dict_id, "vib", "values", "c", "2", "0"))
+    options = dict(baselines=(), learning_curve=())
+    with pytest.raises(BadChunk, match=rf"features/{dict_id}/vib/values, chunk 2 \(rows 40\.\.59\)"):
+        evaluate.evaluate_features(url, "vib", dict_id, **options)
+    report = evaluate.evaluate_features(url, "vib", dict_id, on_bad_chunk="skip", **options)
+    assert report["rows_lacking"] == 20 and report["n_rows"] == 140
+
+
+def test_only_transient_failures_are_worth_retrying():
+    from atomline.stages.errors import LeaseLost, worth_retrying
+
+    assert worth_retrying(RuntimeError("worker lost its connection"))
+    assert worth_retrying(StoreFault("throttled"))  # a store failing while writing
+    assert not worth_retrying(BadChunk("chunk 5"))
+    assert not worth_retrying(LeaseLost("taken"))
+
+
+@pytest.mark.slow
+@pytest.mark.usefixtures("prefect_harness")
+def test_bad_input_chunk_is_not_retried_by_the_flow(prepared, tmp_path, monkeypatch):
+    from atomline.flows import encode_flow
+
+    url0, _, dict_id = prepared
+    url = _copy(url0, tmp_path)
+    _damage(url, dict_id, 5, "corrupt")
+    reads = []
+    real_read = Workspace.read_chunk
+
+    def counting(self, name, chunk, arr=None):
+        reads.append(chunk)
+        return real_read(self, name, chunk, arr)
+
+    monkeypatch.setattr(Workspace, "read_chunk", counting)
+    with pytest.raises(BadChunk, match="chunk 5"):
+        encode_flow(url, "vib", dict_id=dict_id, workers=1, batches_per_worker=1)
+    assert reads.count(5) == 1  # deterministic: one attempt, not three
+
+
+@pytest.mark.slow
+@pytest.mark.usefixtures("prefect_harness")
+def test_cli_pool_and_evaluate_take_the_bad_chunk_choice(pooled, capsys):
+    import json
+
+    from atomline.flows import cli
+
+    url, dict_id = pooled
+    _truncate(os.path.join(url, "codes", dict_id, "vib", "value", "c", "3", "0"))
+    base = ["pool", url, "vib", "--dictionary", dict_id, "--regions", "2", "--overwrite", "--workers", "1",
+            "--json"]
+    assert cli.main(base) != 0
+    assert f"codes/{dict_id}/vib/value, chunk 3" in capsys.readouterr().out
+    assert cli.main(base + ["--on-bad-chunk", "skip"]) == 0
+    assert json.loads(capsys.readouterr().out)["skipped_rows"] == 20
+    _truncate(os.path.join(url, "features", dict_id, "vib", "values", "c", "1", "0"))
+    assert cli.main(["evaluate", url, "vib", "--dictionary", dict_id, "--baselines", "--curve",
+                     "--no-pictures", "--json", "--on-bad-chunk", "skip"]) == 0
+    assert json.loads(capsys.readouterr().out)["rows_lacking"] == 40

@@ -93,6 +93,10 @@ BAD = [
      NotFound, "dictionaries/d-unknown"),
     ("bad-chunk-choice", lambda ws, d, r, t: encode.encode_chunks(ws, "vib", d, [0], on_bad_chunk="ignore"),
      InputError, "on_bad_chunk"),
+    ("pool-bad-chunk-choice", lambda ws, d, r, t: pool.pool_chunks(ws, "vib", d, [0], on_bad_chunk="ignore"),
+     InputError, "on_bad_chunk"),
+    ("evaluate-bad-chunk-choice", lambda ws, d, r, t: evaluate.evaluate_features(
+        ws, "vib", d, on_bad_chunk="ignore"), InputError, "on_bad_chunk"),
     ("too-few-samples", lambda ws, d, r, t: train.train_dictionary(ws, "vib", n_atoms=64, sample_patches=10),
      InputError, "sample_patches"),
     ("too-many-regions", lambda ws, d, r, t: pool.prepare_pool(ws, "vib", d, regions=99),
