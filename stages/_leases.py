@@ -46,7 +46,6 @@ is no longer its own, nor one that has expired.
 from __future__ import annotations
 
 import datetime as _dt
-import errno
 import json
 import os
 import socket
@@ -58,7 +57,7 @@ from dataclasses import asdict, dataclass
 from zarr.core.buffer import default_buffer_prototype
 from zarr.core.sync import sync
 
-from .errors import LeaseHeld, LeaseLost, NotWritable, problem
+from .errors import LeaseHeld, LeaseLost, not_writable, problem, unwritable
 
 PREFIX = ".leases"
 
@@ -156,11 +155,9 @@ class _LeaseStore:
                 sync(fs._pipe_file(f"{self.store.path.rstrip('/')}/{key}", data, mode="create"))
             else:
                 sync(self.store.set_if_not_exists(key, _buffer(data)))
-        except (PermissionError, _ReadOnly) as exc:
-            raise _not_writable(info.output, exc) from exc
-        except OSError as exc:  # FileExistsError, or a store's "precondition failed"
-            if getattr(exc, "errno", None) in _READ_ONLY_ERRNOS:
-                raise _not_writable(info.output, exc) from exc
+        except OSError as exc:  # FileExistsError, or a store's "precondition failed" ...
+            if unwritable(exc):  # ... but never a read-only or protected store
+                raise not_writable(f"lease on {info.output}", exc) from exc
         held = self.read(info.output)
         return held is not None and held.token == info.token
 
@@ -175,25 +172,6 @@ def _buffer(data: bytes):
     return default_buffer_prototype().buffer.from_bytes(data)
 
 
-#: errno values meaning "this place cannot be written" (read-only file system, no permission).
-_READ_ONLY_ERRNOS = (errno.EROFS, errno.EACCES, errno.EPERM)
-
-
-class _ReadOnly(Exception):
-    """Placeholder so the except clause above also names zarr's read-only store error."""
-
-
-try:  # zarr raises its own ValueError subclass for a store opened read-only
-    from zarr.errors import ReadOnlyError as _ReadOnly  # type: ignore[no-redef]  # noqa: F811
-except ImportError:  # pragma: no cover - older zarr
-    pass
-
-
-def _not_writable(output: str, exc: BaseException) -> NotWritable:
-    return NotWritable(problem(f"lease on {output}", "a workspace this run can write",
-                               f"a read-only or protected store ({type(exc).__name__}: {exc})",
-                               "Run on a writable copy of the workspace, or fix the permissions "
-                               "or mount; reading commands (show, plots) work on a read-only one."))
 
 
 class Lease:

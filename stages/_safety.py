@@ -28,7 +28,7 @@ from typing import Any
 import numpy as np
 from zarr.storage import LocalStore
 
-from .errors import LayoutError, UnsafeStore, problem
+from .errors import LayoutError, UnsafeStore, not_writable, problem, unwritable
 
 #: Codec names that only move or transform numbers (zarr v3 names, numcodecs ids, and
 #: the ``numcodecs.<id>`` names zarr v3 gives numcodecs codecs).
@@ -212,11 +212,21 @@ class ContainedLocalStore(LocalStore):
 
     async def _set(self, key, value, exclusive: bool = False) -> None:
         self.contained(key)
-        await super()._set(key, value, exclusive=exclusive)
+        try:
+            await super()._set(key, value, exclusive=exclusive)
+        except OSError as exc:
+            if unwritable(exc):  # a read-only mount says so, rather than a raw OSError
+                raise not_writable(f"{key} in workspace {self.root}", exc) from exc
+            raise
 
     async def delete(self, key: str) -> None:
         self.contained(key)
-        await super().delete(key)
+        try:
+            await super().delete(key)
+        except OSError as exc:
+            if unwritable(exc):
+                raise not_writable(f"{key} in workspace {self.root}", exc) from exc
+            raise
 
     async def delete_dir(self, prefix: str) -> None:
         self.contained(prefix.rstrip("/"))

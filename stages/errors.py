@@ -11,6 +11,8 @@ The subclasses also derive from the matching built-in exception (``ValueError``,
 
 from __future__ import annotations
 
+import errno
+
 __all__ = [
     "AtomlineError",
     "InputError",
@@ -26,6 +28,8 @@ __all__ = [
     "StoreFault",
     "problem",
     "worth_retrying",
+    "unwritable",
+    "not_writable",
     "retry_if_transient",
 ]
 
@@ -123,3 +127,18 @@ def retry_if_transient(task, task_run, state) -> bool:
         except BaseException as raised:  # the failure's own exception, as Prefect stored it
             exc = raised
     return worth_retrying(exc)
+
+
+def unwritable(exc: BaseException) -> bool:
+    """Whether an ``OSError`` means the place cannot be written at all (a read-only file
+    system or mount, no permission), as opposed to a file that is there or a full disk."""
+    return isinstance(exc, PermissionError) or getattr(exc, "errno", None) in (
+        errno.EROFS, errno.EACCES, errno.EPERM)
+
+
+def not_writable(where: str, exc: BaseException) -> NotWritable:
+    """The :class:`NotWritable` error for ``exc`` raised while writing ``where``."""
+    return NotWritable(problem(where, "a workspace this run can write",
+                               f"a read-only or protected store ({type(exc).__name__}: {exc})",
+                               "Run on a writable copy of the workspace, or fix the mount or "
+                               "the permissions; reading commands (show, plots) work on a read-only one."))

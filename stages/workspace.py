@@ -51,7 +51,8 @@ import zarr
 from . import _leases
 from ._safety import ContainedLocalStore, check_array_metadata, require_attrs
 from .errors import (AtomlineError, BadChunk, FingerprintMismatch, InputError, LayoutError,
-                     LeaseHeld, NotFound, OutputExists, StoreFault, problem)
+                     LeaseHeld, NotFound, OutputExists, StoreFault, not_writable, problem,
+                     unwritable)
 
 __all__ = ["Workspace", "Output", "StoredDictionary", "LAYOUT_VERSION", "fingerprint_params",
            "BAD_CHUNK_CHOICES", "check_bad_chunk_choice",
@@ -703,11 +704,12 @@ class Workspace:
             raise InputError(problem(f"labels of rows appended to {name!r}", f"{m} integer labels",
                                      f"shape {labels.shape}, dtype {labels.dtype}",
                                      "Pass one integer label per new row."))
+        labels = check_labels(labels, f"labels of rows appended to {name!r}")
         lab = self.root[f"labels/{name}"]
         old = _recorded_rows(self._node(f"data/{name}", "records"))
         if lab.shape[0] != old:  # an earlier append stopped half-way
             lab.resize((old,))
-        return labels.astype(np.int64)
+        return labels
 
     def records_history(self, name: str) -> list[dict]:
         """Every length the records have had: ``[{"rows", "fingerprint"}, …]``, oldest first."""
@@ -837,9 +839,10 @@ class Workspace:
         if labels.shape[0] != n:
             raise InputError(problem(f"labels {name!r}", f"{n} labels (one per record)",
                                      f"{labels.shape[0]}", "Pass one label per record."))
+        labels = check_labels(labels, f"labels {name!r}")
         path = f"labels/{name}"
         self._refuse_existing(path, overwrite)
-        self.root.create_array(path, data=labels.astype(np.int64), overwrite=True)
+        self.root.create_array(path, data=labels, overwrite=True)
         return {"name": name, "n": int(n), "classes": sorted(int(c) for c in np.unique(labels))}
 
     def labels(self, name: str) -> np.ndarray:
@@ -1578,6 +1581,33 @@ def check_records(arr: Any, where: str) -> None:
                                  "Add some records."))
 
 
+def check_labels(labels: np.ndarray, where: str) -> np.ndarray:
+    """Class numbers 0..C−1 as int64; refuse negative ones and any int64 cannot hold.
+
+    Parameters
+    ----------
+    labels : ndarray of shape (n,), integer dtype
+    where : str
+
+    Returns
+    -------
+    ndarray of shape (n,), int64
+
+    Raises
+    ------
+    InputError
+        A negative label, or an unsigned one ≥ 2⁶³ (``astype(int64)`` would wrap it to a
+        negative number silently); the message names the first such row.
+    """
+    if labels.size:
+        bad = labels < 0 if labels.dtype.kind == "i" else labels > np.iinfo(np.int64).max
+        if bad.any():
+            row = int(np.flatnonzero(bad)[0])
+            raise InputError(problem(f"{where}, row {row}", f"class numbers 0..{np.iinfo(np.int64).max}",
+                                     f"label {labels[row]}", "Encode classes as integers 0..C-1."))
+    return labels.astype(np.int64)
+
+
 def check_bad_chunk_choice(on_bad_chunk: str) -> None:
     """Refuse an ``on_bad_chunk`` that is not one of :data:`BAD_CHUNK_CHOICES`."""
     if on_bad_chunk not in BAD_CHUNK_CHOICES:
@@ -1812,7 +1842,12 @@ def _store(url: str, mode: str) -> Any:
         return url
     from zarr.core.sync import sync
 
-    return sync(ContainedLocalStore.open(url, mode=mode))
+    try:
+        return sync(ContainedLocalStore.open(url, mode=mode))
+    except OSError as exc:  # creating the directory on a read-only mount
+        if unwritable(exc):
+            raise not_writable(f"workspace {url}", exc) from exc
+        raise
 
 
 def _open_array(url: str, path: str, storage_options: dict | None) -> zarr.Array:

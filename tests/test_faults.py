@@ -276,3 +276,63 @@ def test_cli_pool_and_evaluate_take_the_bad_chunk_choice(pooled, capsys):
     assert cli.main(["evaluate", url, "vib", "--dictionary", dict_id, "--baselines", "--curve",
                      "--no-pictures", "--json", "--on-bad-chunk", "skip"]) == 0
     assert json.loads(capsys.readouterr().out)["rows_lacking"] == 40
+
+
+# ------------------------------------------------------------ a read-only workspace
+
+@pytest.fixture
+def read_only(prepared, tmp_path, monkeypatch):
+    """A copy of the workspace on what behaves like a read-only mount: every file write
+    fails with EROFS (as root, permissions alone would not stop the writes)."""
+    import zarr.storage._local as local
+
+    url = _copy(prepared[0], tmp_path)
+
+    def refuse(path, value, exclusive=False):
+        raise OSError(errno.EROFS, "Read-only file system", str(path))
+
+    monkeypatch.setattr(local, "_put", refuse)
+    return url, prepared[2]
+
+
+def test_read_only_workspace_is_named_as_such_by_leases(read_only):
+    from atomline.stages.errors import NotWritable
+
+    url, dict_id = read_only
+    ws = Workspace.open(url)
+    before = store_snapshot(ws)
+    with pytest.raises(NotWritable, match="read-only") as caught:
+        ws.lease(encode.codes_path(dict_id, "vib"))
+    assert "taking it in turn" not in str(caught.value)
+    with pytest.raises(NotWritable, match="read-only"):
+        encode.prepare_encode(ws, "vib", dict_id)  # the stage, not only the lease
+    assert store_snapshot(ws) == before
+
+
+def test_read_only_workspace_refuses_add_records_without_a_raw_os_error(read_only, tmp_path, capsys):
+    import json
+
+    from atomline.flows import cli
+    from atomline.stages.errors import NotWritable
+
+    url, _ = read_only
+    with pytest.raises(NotWritable, match="read-only"):
+        Workspace.open(url).add_records("new", np.ones((4, 8), np.float32))
+    npy = tmp_path / "new.npy"
+    np.save(npy, np.ones((4, 8), np.float32))
+    assert cli.main(["add-records", url, "new", str(npy), "--json"]) != 0
+    refusal = json.loads(capsys.readouterr().out)
+    assert refusal["error"] == "NotWritable" and "read-only" in refusal["message"]
+
+
+def test_lease_on_a_read_only_object_store_is_named_as_such(memory_url):
+    from atomline.stages.errors import NotWritable
+
+    ws = Workspace.open(memory_url, create=True)
+
+    async def refuse(path, data, **kwargs):
+        raise PermissionError(errno.EACCES, "Access Denied", path)
+
+    ws.root.store.fs._pipe_file = refuse  # s3fs raises PermissionError for AccessDenied
+    with pytest.raises(NotWritable, match="read-only"):
+        ws.lease("promoted")

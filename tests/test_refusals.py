@@ -83,6 +83,13 @@ BAD = [
      InputError, "160 labels"),
     ("labels-not-integer", lambda ws, d, r, t: ws.add_labels("vib", np.zeros(160), overwrite=True),
      InputError, "integer"),
+    ("labels-negative", lambda ws, d, r, t: ws.add_labels("vib", np.r_[np.zeros(159, int), -1], overwrite=True),
+     InputError, "row 159"),
+    ("labels-beyond-int64", lambda ws, d, r, t: ws.add_labels(
+        "vib", np.r_[np.zeros(150, np.uint64), np.full(10, 2**63, np.uint64)], overwrite=True),
+     InputError, "label 9223372036854775808"),
+    ("appended-labels-negative", lambda ws, d, r, t: ws.append_records(
+        "vib", np.ones((2, 2048), np.float32), labels=np.array([0, -3])), InputError, "label -3"),
     ("labels-without-records", lambda ws, d, r, t: ws.add_labels("absent", np.zeros(3, int)),
      NotFound, "data/absent"),
     ("dictionary-of-other-width", lambda ws, d, r, t: encode.prepare_encode(ws, "other", d),
