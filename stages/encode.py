@@ -56,7 +56,9 @@ def prepare_encode(
     coder : str, optional
         Coder name; by default the one the dictionary was trained with.
     coder_options : dict, optional
-        Its options; by default the training ones (when ``coder`` is also default).
+        Its options. With the dictionary's own coder they are merged into the training
+        ones (each given option replaces only the one of its name); with another coder
+        they are all the options. Unknown option names are refused, naming the known ones.
     overwrite : bool
         Replace codes made from other inputs or parameters.
 
@@ -73,9 +75,10 @@ def prepare_encode(
         raise InputError(problem(f"dictionary {dict_id}", f"records shaped {geometry.record_shape}",
                                f"records {records!r} shaped {tuple(arr.shape[1:])}",
                                "Train a dictionary on records of this shape."))
-    if coder is None:
+    if coder is None or coder == stored.attrs["coder"]:
+        # The dictionary's own coder: given options change only what they name.
         coder = stored.attrs["coder"]
-        coder_options = stored.attrs["coder_options"] if coder_options is None else coder_options
+        coder_options = {**stored.attrs["coder_options"], **(coder_options or {})}
     coder_options = dict(coder_options or {})
     resolved = _resolve_options(ws, dict_id, coder, coder_options)
     width = code_width(coder, stored.atoms.shape[0], **resolved)
@@ -165,6 +168,7 @@ def encode_chunks(
     ws = (workspace if isinstance(workspace, Workspace)
           else Workspace.open(workspace, storage_options=storage_options))
     out = ws.output(codes_path(dict_id, records), lease=lease)
+    chunks = out.check_chunks(chunks)
     attrs = out.attrs
     arr = ws.records(records)
     stored = ws.load_dictionary(dict_id)

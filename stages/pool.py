@@ -219,6 +219,7 @@ def pool_chunks(
     ws = (workspace if isinstance(workspace, Workspace)
           else Workspace.open(workspace, storage_options=storage_options))
     out = ws.output(features_path(dict_id, records), lease=lease)
+    chunks = out.check_chunks(chunks)
     codes = ws.output(codes_path(dict_id, records))
     attrs, cattrs = out.attrs, codes.attrs
     if attrs["codes_fingerprint"] != cattrs["fingerprint"]:

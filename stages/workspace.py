@@ -138,10 +138,11 @@ def _check_name(name: str, what: str) -> str:
         or not name
         or name in {".", ".."}
         or any(c in name for c in "/\\\0")
+        or any(ord(c) < 32 or ord(c) == 127 for c in name)  # newlines, tabs, escapes
         or name.startswith(".")
     ):
         raise InputError(problem(what, "a plain name (letters, digits, '-', '_')", repr(name),
-                                 "Choose a name without slashes or leading dots."))
+                                 "Choose a name without slashes, control characters or leading dots."))
     return name
 
 
@@ -260,6 +261,20 @@ class Output:
         flags = self._flags(first, max(chunks) + 1)
         done = {int(c) for c in chunks if flags[c - first] > 0}
         return done, {c for c in done if flags[c - first] == _SKIPPED}
+
+    def check_chunks(self, chunks: list[int]) -> list[int]:
+        """Refuse chunk numbers that are not integers ``0 … n_chunks − 1`` (before any work).
+
+        Returns
+        -------
+        list of int
+        """
+        bad = [c for c in chunks if isinstance(c, bool) or not isinstance(c, (int, np.integer))
+               or not 0 <= c < self.n_chunks]
+        if bad:
+            raise InputError(problem(f"{self.path}, chunks", f"chunk numbers 0..{self.n_chunks - 1}",
+                                     f"{bad[:10]}", "Pass chunk numbers from prepare's 'pending' list."))
+        return [int(c) for c in chunks]
 
     def read(self, name: str, rows: slice) -> np.ndarray:
         """Rows ``rows`` of the data array ``name`` (opened once with the output).
@@ -531,9 +546,7 @@ class Workspace:
             ``{"name", "shape", "dtype", "chunk_rows", "n_chunks", "fingerprint"}``
         """
         _check_name(name, "records name")
-        if isinstance(source, (str, os.PathLike)):
-            source = np.load(os.fspath(source), mmap_mode="r", allow_pickle=False)
-        arr = source
+        arr = _array_like(source)
         check_records(arr, f"records {name!r}")
         path = f"data/{name}"
         self._refuse_existing(path, overwrite)
@@ -643,8 +656,7 @@ class Workspace:
             raise InputError(problem(f"data/{name}", "records copied into the workspace",
                                      "a link to another store",
                                      "Append to the linked array where it lives, then link it again."))
-        if isinstance(source, (str, os.PathLike)):
-            source = np.load(os.fspath(source), mmap_mode="r", allow_pickle=False)
+        source = _array_like(source)
         # Store every chunk, zeros included, as add_records does: a missing chunk object
         # then always means a lost chunk (see read_chunk).
         z = node.with_config({"write_empty_chunks": True})
@@ -1579,6 +1591,20 @@ def check_records(arr: Any, where: str) -> None:
     if arr.shape[0] == 0 or int(np.prod(arr.shape[1:])) == 0:
         raise InputError(problem(where, "at least one non-empty record", f"shape {tuple(arr.shape)}",
                                  "Add some records."))
+
+
+def _array_like(source: Any) -> Any:
+    """Rows to copy: a ``.npy`` path memory-mapped, an array (numpy, zarr, memmap) as it
+    is, anything else (nested lists, array-likes) through ``np.asarray``."""
+    if isinstance(source, (str, os.PathLike)):
+        return np.load(os.fspath(source), mmap_mode="r", allow_pickle=False)
+    if hasattr(source, "shape") and hasattr(source, "dtype"):
+        return source
+    try:
+        return np.asarray(source)
+    except (ValueError, TypeError) as exc:  # ragged lists
+        raise InputError(problem("records", "an array or rows of equal length", f"{type(exc).__name__}: {exc}"[:200],
+                                 "Pass a numpy array of shape (n, ...).")) from exc
 
 
 def check_labels(labels: np.ndarray, where: str) -> np.ndarray:

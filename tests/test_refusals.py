@@ -79,6 +79,18 @@ BAD = [
      InputError, "positive"),
     ("name-escapes", lambda ws, d, r, t: ws.add_records("../escape", np.ones((2, 2), np.float32)),
      InputError, "plain name"),
+    ("name-with-newline", lambda ws, d, r, t: ws.add_records("vib\nforged line", np.ones((2, 2), np.float32)),
+     InputError, "control characters"),
+    ("name-with-terminal-escape", lambda ws, d, r, t: ws.add_records("x\x1b[2J", np.ones((2, 2), np.float32)),
+     InputError, "control characters"),
+    ("ragged-list-records", lambda ws, d, r, t: ws.add_records("new", [[1.0, 2.0], [3.0]]),
+     InputError, "rows of equal length"),
+    ("encode-chunk-out-of-range", lambda ws, d, r, t: encode.encode_chunks(ws, "vib", d, [0, 99]),
+     InputError, "chunk numbers 0..3"),
+    ("pool-chunk-out-of-range", lambda ws, d, r, t: pool.pool_chunks(ws, "vib", d, [-1]),
+     InputError, "chunk numbers 0..3"),
+    ("coder-option-unknown", lambda ws, d, r, t: encode.prepare_encode(
+        ws, "vib", d, coder_options={"encoder": "mine"}), InputError, "unknown ['encoder']"),
     ("labels-wrong-length", lambda ws, d, r, t: ws.add_labels("vib", np.zeros(159, int), overwrite=True),
      InputError, "160 labels"),
     ("labels-not-integer", lambda ws, d, r, t: ws.add_labels("vib", np.zeros(160), overwrite=True),
@@ -364,3 +376,25 @@ def test_chunk_file_replaced_by_a_link_refused_naming_it(copy_of, on_bad_chunk):
     with pytest.raises(UnsafeStore, match="data/vib/c/1/0"):
         encode.encode_chunks(ws, "vib", dict_id, [1], on_bad_chunk=on_bad_chunk)
     assert ws.output(path).pending() == [0, 1, 2, 3]
+
+
+# ---------------------------------------------------------------- accepted as asked
+
+def test_coder_options_given_are_merged_into_the_dictionarys(copy_of):
+    root, dict_id, _ = copy_of
+    ws = Workspace.open(str(root))
+    trained = ws.load_dictionary(dict_id).attrs["coder_options"]
+    assert trained == {"n_nonzero": 3}
+    got = encode.prepare_encode(ws, "vib", dict_id, coder_options={"tol": 1e-6}, overwrite=True)
+    assert got["coder"] == "omp" and got["coder_options"] == {"n_nonzero": 3, "tol": 1e-6}
+    got = encode.prepare_encode(ws, "vib", dict_id, coder="omp", coder_options={"n_nonzero": 2},
+                                overwrite=True)
+    assert got["coder_options"] == {"n_nonzero": 2}  # a given option replaces its own name only
+
+
+def test_records_from_a_list_of_rows(memory_url):
+    ws = Workspace.open(memory_url, create=True)
+    rows = [[0.5, 1.5, 2.5], [3.5, 4.5, 5.5]]
+    info = ws.add_records("rows", rows)
+    assert info["shape"] == [2, 3] and info["dtype"] == "float64"
+    np.testing.assert_array_equal(ws.records("rows")[:], np.array(rows))

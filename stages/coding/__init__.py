@@ -82,6 +82,7 @@ fixed block shape so that a row's result never depends on the other rows of its 
 
 from __future__ import annotations
 
+import inspect
 from typing import Any, Callable
 
 import numpy as np
@@ -162,6 +163,21 @@ def _bad_options(method: str, exc: TypeError) -> InputError:
                               str(exc), "See atomline.stages.coding's docstring."))
 
 
+def _check_option_names(method: str, options: dict) -> None:
+    """Refuse option names the coder does not take, listing those it does.
+
+    Every coder's options are keyword-only parameters, so its signature is the list.
+    """
+    params = inspect.signature(METHODS[method]).parameters
+    known = sorted(n for n, p in params.items() if p.kind is inspect.Parameter.KEYWORD_ONLY)
+    unknown = sorted(set(options) - set(known))
+    if unknown:
+        raise InputError(problem(f"options of coder {method!r}", f"option names among {known}",
+                                 f"unknown {unknown}",
+                                 "Check the spelling, or choose the coder these options belong "
+                                 "to (--coder)."))
+
+
 def code(X: np.ndarray, atoms: np.ndarray, method: str = "omp", **options: Any) -> SparseCodes:
     """Sparse-code the rows of ``X`` over a dictionary.
 
@@ -219,6 +235,7 @@ def code_width(method: str, n_atoms: int, **options: Any) -> int:
     """
     if method not in _WIDTHS:
         raise _unknown(method)
+    _check_option_names(method, options)
     try:
         return int(_WIDTHS[method](int(n_atoms), **options))
     except TypeError as exc:
