@@ -2,7 +2,9 @@
 
 Every command takes the workspace as a directory or fsspec URL, prints a short human
 report, or JSON with ``--json``. Flows run locally through Prefect; with no Prefect server
-configured, Prefect starts a temporary one for the run (no set-up needed).
+configured (``PREFECT_API_URL``), a flow command starts a temporary one for the run and stops
+it afterwards (see ``flows/_server.py``). Arguments are checked against the workspace first
+(``flows/preflight.py``), so a mistake is refused before any server starts.
 
     atomline demo [DIR]                      build the demo workspace and run the nightly flow
     atomline add-records WS NAME FILE.npy    copy records in, chunk by chunk
@@ -25,30 +27,88 @@ import os
 import sys
 import threading
 import time
+import warnings
 from typing import Any, Callable
 
 DEMO_OPTIONS = dict(n_atoms=128, patch_size=64, stride=32, regions=2, sample_patches=20_000)
 
 
 def main(argv: list[str] | None = None) -> int:
-    """Entry point of the ``atomline`` command; returns the exit status."""
+    """Entry point of the ``atomline`` command; returns the exit status.
+
+    0 on success; 2 for an error atomline raises on purpose (:class:`AtomlineError`: the
+    message says what to do); 1 for anything unexpected (one paragraph on stderr, the full
+    traceback in a log file); 130 when interrupted. ``--debug`` also prints the traceback.
+    """
     args = _parser().parse_args(argv)
     _quiet_prefect(args.verbose)
     from atomline.stages.errors import AtomlineError
 
     try:
-        result = args.run(args)
+        result = _run(args)
+    except KeyboardInterrupt:
+        return _fail(args, "Interrupted", "interrupted; finished chunks are kept, a rerun resumes", 130)
     except AtomlineError as exc:
-        if args.json:
-            print(json.dumps({"error": type(exc).__name__, "message": str(exc)}))
-        else:
-            print(f"atomline: {type(exc).__name__}: {exc}", file=sys.stderr)
-        return 2
+        return _fail(args, type(exc).__name__, str(exc), 2)
+    except Exception as exc:  # anything not raised on purpose: one paragraph and a log file
+        log = _write_log(args, exc)
+        message = (f"unexpected {type(exc).__name__}: {exc}. This is not a known atomline error, "
+                   f"so it may be a bug; the full traceback is in {log}. Rerun with --debug to "
+                   f"see it here, and include the log file when reporting it.")
+        return _fail(args, type(exc).__name__, message, 1, log=log)
     if args.json:
         print(json.dumps(result, indent=2, default=_plain))
     else:
         print(args.describe(result) if hasattr(args, "describe") else json.dumps(result, indent=2))
     return 0
+
+
+#: Commands that run Prefect flows, so need a Prefect API (a temporary server if none is set).
+FLOW_COMMANDS = ("demo", "train", "encode", "pool", "evaluate", "nightly", "serve")
+
+
+def _run(args: argparse.Namespace) -> Any:
+    """Check the arguments against the workspace, then run the command (with Prefect if needed)."""
+    if hasattr(args, "check"):
+        args.check(args)  # refuses mistakes before any flow or server starts
+    if args.command not in FLOW_COMMANDS or getattr(args, "dry_run", False):
+        return args.run(args)
+    from atomline.flows._server import temporary_server
+
+    with temporary_server():
+        return args.run(args)
+
+
+def _fail(args: argparse.Namespace, kind: str, message: str, status: int, log: str | None = None) -> int:
+    """Report an error: the message on stderr (JSON on stdout with ``--json``); the status."""
+    if args.debug and status != 130:
+        import traceback
+
+        traceback.print_exc(file=sys.stderr)
+    if args.json:
+        print(json.dumps({"error": kind, "message": message, "exit_status": status, "log": log}))
+    else:
+        print(f"atomline: {kind}: {message}" if status != 130 else f"atomline: {message}", file=sys.stderr)
+    return status
+
+
+#: Where the full log of an unexpected error goes when ``ATOMLINE_LOG_DIR`` is not set.
+DEFAULT_LOG_DIR = os.path.join("~", ".cache", "atomline", "logs")
+
+
+def _write_log(args: argparse.Namespace, exc: BaseException) -> str:
+    """Write the command, versions and traceback of an unexpected error; return the file's path."""
+    import platform
+    import traceback
+
+    directory = os.path.expanduser(os.environ.get("ATOMLINE_LOG_DIR") or DEFAULT_LOG_DIR)
+    os.makedirs(directory, exist_ok=True)
+    path = os.path.join(directory, time.strftime("atomline-%Y%m%d-%H%M%S") + f"-{os.getpid()}.log")
+    with open(path, "w") as fh:
+        fh.write(f"command: atomline {' '.join(sys.argv[1:]) or args.command}\n")
+        fh.write(f"python {platform.python_version()} on {platform.platform()}\n\n")
+        fh.write("".join(traceback.format_exception(exc)))
+    return path
 
 
 def _quiet_prefect(verbose: bool) -> None:
@@ -57,6 +117,13 @@ def _quiet_prefect(verbose: bool) -> None:
     if not verbose:
         os.environ.setdefault("PREFECT_LOGGING_LEVEL", "WARNING")
         os.environ.setdefault("PREFECT_LOGGING_TO_API_ENABLED", "false")
+        # A flow or task ended by an error logs it with its traceback on these loggers; the
+        # CLI reports the error itself, once, so they stay quiet below CRITICAL.
+        os.environ.setdefault("PREFECT_LOGGING_LOGGERS_PREFECT_FLOW_RUNS_LEVEL", "CRITICAL")
+        os.environ.setdefault("PREFECT_LOGGING_LOGGERS_PREFECT_TASK_RUNS_LEVEL", "CRITICAL")
+        # Prefect's own Python warnings (settings it could not apply, deprecations) are for
+        # its developers; --verbose shows them.
+        warnings.filterwarnings("ignore", module=r"prefect(\.|$)")
 
 
 def _plain(value: Any) -> Any:
@@ -77,15 +144,18 @@ def _parser() -> argparse.ArgumentParser:
     )
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
-    def command(name: str, run: Callable, describe: Callable | None, help: str) -> argparse.ArgumentParser:
+    def command(name: str, run: Callable, describe: Callable | None, help: str,
+                check: Callable | None = None) -> argparse.ArgumentParser:
         sp = sub.add_parser(name, help=help, description=help)
-        sp.set_defaults(run=run, **({"describe": describe} if describe else {}))
+        sp.set_defaults(run=run, **({"describe": describe} if describe else {}),
+                        **({"check": check} if check else {}))
         sp.add_argument("--json", action="store_true", help="print the result as JSON for other tools")
         sp.add_argument("--verbose", action="store_true", help="show Prefect's own log lines")
+        sp.add_argument("--debug", action="store_true", help="on an error, also print its traceback")
         return sp
 
     sp = command("demo", _run_demo, _describe_demo,
-                 "build the synthetic vibration workspace and run the nightly flow on it")
+                 "build the synthetic vibration workspace and run the nightly flow on it", _check_demo)
     sp.add_argument("directory", nargs="?", default="atomline-demo.zarr",
                     help="workspace directory to create or reuse (default: %(default)s)")
     sp.add_argument("--records", type=int, default=4000, help="number of synthetic records (default: %(default)s)")
@@ -117,7 +187,7 @@ def _parser() -> argparse.ArgumentParser:
     sp.add_argument("--path", default="", help="path of the array inside that store")
     sp.add_argument("--overwrite", action="store_true", help="replace an existing entry of that name")
 
-    sp = command("train", _run_train, None, "learn a dictionary from a sample of data/NAME")
+    sp = command("train", _run_train, None, "learn a dictionary from a sample of data/NAME", _check_train)
     _ws_name(sp)
     _train_options(sp)
     _fault_options(sp, bad_chunks=False)
@@ -135,7 +205,8 @@ def _parser() -> argparse.ArgumentParser:
     sp.add_argument("--sample", type=int, default=5000, help="training patches (default: %(default)s)")
     sp.add_argument("--seed", type=int, default=0, help="seed (default: %(default)s)")
 
-    sp = command("encode", _run_encode, _describe_stage, "sparse-code every chunk of data/NAME (resumes)")
+    sp = command("encode", _run_encode, _describe_stage, "sparse-code every chunk of data/NAME (resumes)",
+                 _check_encode)
     _ws_name(sp)
     sp.add_argument("--dictionary", help="dictionary id (default: the promoted one)")
     _coder_options(sp, default=None)
@@ -143,7 +214,8 @@ def _parser() -> argparse.ArgumentParser:
     _fault_options(sp)
     _runner_options(sp)
 
-    sp = command("pool", _run_pool, _describe_stage, "pool the codes of data/NAME into per-record features (resumes)")
+    sp = command("pool", _run_pool, _describe_stage, "pool the codes of data/NAME into per-record features (resumes)",
+                 _check_pool)
     _ws_name(sp)
     sp.add_argument("--dictionary", help="dictionary id (default: the promoted one)")
     _pool_options(sp)
@@ -152,7 +224,7 @@ def _parser() -> argparse.ArgumentParser:
     _runner_options(sp)
 
     sp = command("evaluate", _run_evaluate, _describe_evaluation,
-                 "score a linear classifier on the features against the raw records")
+                 "score a linear classifier on the features against the raw records", _check_evaluate)
     _ws_name(sp)
     sp.add_argument("--dictionary", help="dictionary id (default: the promoted one)")
     _evaluation_options(sp)
@@ -160,13 +232,14 @@ def _parser() -> argparse.ArgumentParser:
     _runner_options(sp)
 
     sp = command("nightly", _run_nightly, _describe_nightly,
-                 "train a candidate dictionary, encode, pool, evaluate, and promote it if it holds up")
+                 "train a candidate dictionary, encode, pool, evaluate, and promote it if it holds up",
+                 _check_nightly)
     _ws_name(sp)
     _nightly_options(sp)
     _runner_options(sp)
 
     sp = command("serve", _run_serve, _describe_serve,
-                 "serve the nightly flow on a cron schedule with Prefect (runs until stopped)")
+                 "serve the nightly flow on a cron schedule with Prefect (runs until stopped)", _check_serve)
     _ws_name(sp)
     sp.add_argument("--cron", default="0 2 * * *", help="cron schedule (default: '%(default)s', 02:00 daily)")
     sp.add_argument("--timezone", default="UTC", help="time zone of the schedule (default: %(default)s)")
@@ -349,12 +422,80 @@ def _with_runner(flow, args: argparse.Namespace):
     return flow.with_options(task_runner=task_runner(args.runner, args.workers, args.dask_address))
 
 
+# ---------------------------------------------------------------------------- checks
+# Each flow command's arguments, checked against the workspace before anything starts.
+def _check_demo(args):
+    from atomline.flows import preflight
+
+    preflight.check_runner(args.workers)
+
+
+def _check_train(args):
+    from atomline.flows import preflight
+
+    preflight.check_runner(args.workers)
+    preflight.check_train(args.workspace, args.name, **_train_params(args))
+
+
+def _check_encode(args):
+    from atomline.flows import preflight
+
+    preflight.check_runner(args.workers)
+    preflight.check_encode(args.workspace, args.name, dict_id=args.dictionary, coder=args.coder,
+                           coder_options=_coder_params(args))
+
+
+def _check_pool(args):
+    from atomline.flows import preflight
+
+    preflight.check_runner(args.workers)
+    preflight.check_pool(args.workspace, args.name, dict_id=args.dictionary, regions=_one_or_list(args.regions))
+
+
+def _check_evaluate(args):
+    from atomline.flows import preflight
+
+    preflight.check_runner(args.workers)
+    preflight.check_evaluate(args.workspace, args.name, dict_id=args.dictionary, **_evaluation_params(args))
+
+
+def _check_nightly(args):
+    from atomline.flows import preflight
+
+    preflight.check_nightly(args.workspace, args.name, **_nightly_params(args))
+
+
+def _check_serve(args):
+    from atomline.flows import preflight
+
+    preflight.check_cron(args.cron, args.timezone)
+    preflight.check_nightly(args.workspace, args.name, **_nightly_params(args))
+
+
 # ---------------------------------------------------------------------------- commands
 def _run_add_records(args):
-    from atomline.stages.workspace import Workspace
+    from atomline.stages.errors import NotFound
+    from atomline.stages.workspace import Workspace, load_npy
 
-    ws = Workspace.open(args.workspace, create=True)
-    return ws.add_records(args.name, args.file, chunk_rows=args.chunk_rows, overwrite=args.overwrite)
+    source = load_npy(args.file, mmap=True)  # a missing or foreign file is refused before anything is made
+    try:
+        ws, created = Workspace.open(args.workspace), False
+    except NotFound:
+        ws, created = Workspace.open(args.workspace, create=True), True
+    try:
+        return ws.add_records(args.name, source, chunk_rows=args.chunk_rows, overwrite=args.overwrite)
+    except BaseException:
+        if created:  # the first records were refused: leave no empty workspace behind
+            _remove_new_workspace(ws)
+        raise
+
+
+def _remove_new_workspace(ws) -> None:
+    """Delete a workspace this command created and nothing was stored in."""
+    from fsspec.core import url_to_fs
+
+    fs, path = url_to_fs(ws.url, **(ws.storage_options or {}))
+    fs.rm(path, recursive=True)
 
 
 def _run_add_labels(args):
@@ -432,6 +573,10 @@ def _run_nightly(args):
                                                  batches_per_worker=args.batches_per_worker,
                                                  **_nightly_params(args))
     report = state.result(raise_on_failure=False)
+    if isinstance(report, BaseException):
+        # A run that failed on an error holds the exception as its result, not a report
+        # (a Failed run for a regression holds its report): raise it, to be reported once.
+        raise report
     report["state"] = {"type": state.type.value, "name": state.name, "message": state.message}
     return report
 

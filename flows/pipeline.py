@@ -24,8 +24,9 @@ from prefect.events import emit_event
 from prefect.futures import as_completed
 from prefect.states import Completed, Failed, State
 
+from atomline.stages.checks import check_retrain, promoted_or_named
 from atomline.stages.drift import detect_drift
-from atomline.stages.errors import InputError, NotFound, problem
+from atomline.stages.errors import InputError, problem
 from atomline.stages.encode import codes_path, encode_task, prepare_encode
 from atomline.stages.evaluate import (BASELINES, DEFAULT_CURVE, compare_evaluations, evaluate_task,
                                       gate_decision)
@@ -302,9 +303,7 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
     if recorded:
         logger.info("these inputs were decided by %s (%s); reporting that decision",
                     recorded["decision_id"], recorded["outcome"])
-    if retrain == "never" and previous is None:
-        raise NotFound(problem(f"workspace {workspace}", "a promoted dictionary (retrain='never')",
-                               "none promoted", "Run once with retrain='if-missing' or 'always'."))
+    check_retrain(retrain, previous, workspace)
 
     def features_for(dict_id: str) -> tuple[dict, dict]:
         enc = encode_flow.fn(workspace, records, dict_id=dict_id, workers=workers,
@@ -473,11 +472,7 @@ def _record_skips(ws: Workspace, path: str, records: str) -> dict:
 
 
 def _promoted(workspace: str) -> str:
-    dict_id = Workspace.open(workspace).promoted
-    if dict_id is None:
-        raise NotFound(problem(f"workspace {workspace}", "a promoted dictionary or --dictionary",
-                               "none promoted", "Run the nightly flow, or name a dictionary."))
-    return dict_id
+    return promoted_or_named(Workspace.open(workspace), None)
 
 
 def _tuple(value):

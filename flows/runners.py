@@ -26,6 +26,7 @@ import os
 import numpy as np
 from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
 
+from atomline.stages.checks import check_workers
 from atomline.stages.errors import InputError, problem
 
 __all__ = ["task_runner", "plan_batches", "blas_threads", "check_reachable", "RUNNERS"]
@@ -57,8 +58,7 @@ def task_runner(kind: str = "threads", workers: int = 2, address: str | None = N
     -------
     prefect.task_runners.TaskRunner
     """
-    if workers < 1:
-        raise InputError(problem("workers", "a positive integer", str(workers), "Use --workers 1 or more."))
+    check_workers(workers)
     if kind == "threads":
         return ThreadPoolTaskRunner(max_workers=workers)
     if kind == "processes":

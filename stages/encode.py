@@ -22,6 +22,7 @@ from prefect import task
 from prefect.cache_policies import NO_CACHE
 from threadpoolctl import threadpool_limits
 
+from .checks import check_record_shape, resolve_coder
 from .coding import code, code_outputs, code_width, gram
 from .errors import BadChunk, FingerprintMismatch, InputError, problem, retry_if_transient
 from .prep import Normaliser, PatchGeometry
@@ -71,15 +72,8 @@ def prepare_encode(
     arr = ws.records(records)
     stored = ws.load_dictionary(dict_id)
     geometry = PatchGeometry.from_attrs(stored.attrs["geometry"])
-    if tuple(arr.shape[1:]) != geometry.record_shape:
-        raise InputError(problem(f"dictionary {dict_id}", f"records shaped {geometry.record_shape}",
-                               f"records {records!r} shaped {tuple(arr.shape[1:])}",
-                               "Train a dictionary on records of this shape."))
-    if coder is None or coder == stored.attrs["coder"]:
-        # The dictionary's own coder: given options change only what they name.
-        coder = stored.attrs["coder"]
-        coder_options = {**stored.attrs["coder_options"], **(coder_options or {})}
-    coder_options = dict(coder_options or {})
+    check_record_shape(dict_id, geometry.record_shape, records, arr.shape[1:])
+    coder, coder_options = resolve_coder(stored.attrs, coder, coder_options)
     resolved = _resolve_options(ws, dict_id, coder, coder_options)
     width = code_width(coder, stored.atoms.shape[0], **resolved)
     P = geometry.patches_per_record

@@ -26,6 +26,7 @@ __all__ = [
     "NotWritable",
     "UnsafeStore",
     "StoreFault",
+    "PrefectUnavailable",
     "problem",
     "worth_retrying",
     "unwritable",
@@ -142,3 +143,7 @@ def not_writable(where: str, exc: BaseException) -> NotWritable:
                                f"a read-only or protected store ({type(exc).__name__}: {exc})",
                                "Run on a writable copy of the workspace, or fix the mount or "
                                "the permissions; reading commands (show, plots) work on a read-only one."))
+
+
+class PrefectUnavailable(AtomlineError, RuntimeError):
+    """No Prefect API to run a flow against: the temporary server did not start in time."""

@@ -60,6 +60,7 @@ from threadpoolctl import threadpool_limits
 
 from .coding import code, gram
 from .encode import codes_path
+from .checks import check_curve, check_folds, check_tolerance
 from .errors import BadChunk, InputError, problem
 from .pool import features_path, pool_codes, region_of_patches
 from .prep import Normaliser, PatchGeometry
@@ -242,9 +243,7 @@ def evaluate_features(
     if unknown:
         raise InputError(problem("baselines", f"a subset of {BASELINES}", str(unknown),
                                  "Drop the unknown names."))
-    if any(not 0 < s < 1 for s in learning_curve):
-        raise InputError(problem("learning_curve", "shares strictly between 0 and 1",
-                                 str(list(learning_curve)), "Use e.g. 0.1, 0.25, 0.5."))
+    check_curve(learning_curve)
     make_classifier(classifier)  # refuse an unknown classifier before any work
     out = ws.output(features_path(dict_id, records))
     if not out.complete:
@@ -433,8 +432,7 @@ def gate_decision(comparison: dict[str, float], tolerance: float) -> str:
     str
         A key of :data:`GATE_OUTCOMES`.
     """
-    if tolerance < 0:
-        raise InputError(problem("tolerance", "a margin ≥ 0", str(tolerance), "Use e.g. 0.01."))
+    check_tolerance(tolerance)
     if comparison["difference"] < -tolerance:
         return "regression"
     return "promoted" if comparison["low"] >= -tolerance else "inconclusive"
@@ -452,16 +450,10 @@ def _skipped_rows(out, n_records: int) -> np.ndarray:
 def _labelled_rows(y: np.ndarray, max_rows: int, seed: int, folds: int,
                    exclude: np.ndarray | None = None) -> np.ndarray:
     """Sorted row numbers to use: all rows but ``exclude``, or a stratified seeded subsample."""
-    if folds < 2:
-        raise InputError(problem("folds", "at least 2", str(folds), "Use e.g. 5 folds."))
     keep = np.ones(y.shape[0], dtype=bool)
     if exclude is not None:
         keep[exclude] = False
-    classes, counts = np.unique(y[keep], return_counts=True)
-    if classes.size < 2 or counts.min() < folds:
-        raise InputError(problem("labels", f"at least two classes with {folds} rows each",
-                                 f"class counts {dict(zip(classes.tolist(), counts.tolist()))}",
-                                 "Label more records or use fewer folds."))
+    check_folds(y[keep], folds)
     rows = np.flatnonzero(keep)
     if rows.size > max_rows:
         rows, _ = train_test_split(rows, train_size=max_rows, stratify=y[rows], random_state=seed)

@@ -24,6 +24,7 @@ import numpy as np
 from prefect import task
 from prefect.cache_policies import NO_CACHE
 
+from .checks import check_regions
 from .errors import BadChunk, FingerprintMismatch, InputError, problem, retry_if_transient
 from .encode import codes_path
 from .prep import PatchGeometry
@@ -57,10 +58,7 @@ def region_of_patches(grid: tuple[int, ...], regions: int | tuple[int, ...]) -> 
     n_regions : int
         ``R``, the product of the parts per axis.
     """
-    parts = (regions,) * len(grid) if isinstance(regions, (int, np.integer)) else tuple(regions)
-    if len(parts) != len(grid) or any(not 1 <= r <= g for r, g in zip(parts, grid)):
-        raise InputError(problem("regions", f"1..{list(grid)} parts per axis ({len(grid)} axes)",
-                                 str(regions), "Use fewer regions than patch positions."))
+    parts = check_regions(grid, regions)
     per_axis = [(np.arange(g) * r) // g for g, r in zip(grid, parts)]
     region = np.zeros(grid, dtype=np.int64)
     for axis, ids in enumerate(per_axis):

@@ -11,15 +11,14 @@ the finished dictionary instead of training again.
 
 from __future__ import annotations
 
-import inspect
 from typing import Any
 
 import numpy as np
 from prefect import task
 from prefect.cache_policies import NO_CACHE
 
-from .errors import InputError, problem
-from .learning import METHODS, learn
+from .checks import check_sample_size
+from .learning import TRAIN_CODER_OPTIONS, learn, takes_coder
 from .prep import Normaliser, PatchGeometry
 from .workspace import Workspace, fingerprint_params, iter_row_chunks
 
@@ -87,23 +86,18 @@ def train_dictionary(
     ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
     arr = ws.records(records)
     geometry = PatchGeometry.for_records(arr.shape[1:], patch_size, stride)
-    coder_options = {"n_nonzero": 5} if coder_options is None else dict(coder_options)
+    coder_options = dict(TRAIN_CODER_OPTIONS) if coder_options is None else dict(coder_options)
     learner_options = dict(learner_options or {})
-    # pca, kmeans and subspaces fix their own coder (recorded in the result's params);
-    # the others code their mini-batches with the coder given here.
-    takes_coder = method in METHODS and "coder" in inspect.signature(METHODS[method]).parameters
-    coder_kw = {"coder": coder, "coder_options": coder_options} if takes_coder else {}
+    coder_kw = {"coder": coder, "coder_options": coder_options} if takes_coder(method) else {}
     normaliser = Normaliser(**(preprocessing or {}))
-    if sample_patches < n_atoms:
-        raise InputError(problem("sample_patches", f"at least n_atoms = {n_atoms}",
-                                 str(sample_patches), "Sample more patches or ask for fewer atoms."))
+    check_sample_size(sample_patches, n_atoms)
     recipe = {
         "records_fingerprint": ws.records_fingerprint(records),
         "geometry": geometry.to_attrs(),
         "n_atoms": int(n_atoms),
         "method": method,
-        "coder": coder if takes_coder else None,
-        "coder_options": coder_options if takes_coder else None,
+        "coder": coder if takes_coder(method) else None,
+        "coder_options": coder_options if takes_coder(method) else None,
         "learner_options": learner_options,
         "preprocessing": normaliser.to_attrs(),
         "sample_patches": int(sample_patches),

@@ -481,6 +481,9 @@ class Workspace:
         kwargs = {"storage_options": storage_options} if storage_options else {}
         try:
             root = zarr.open_group(store=_store(url, "r+"), mode="r+", **kwargs)
+        except (FileExistsError, NotADirectoryError) as exc:  # a local file, not a directory
+            raise LayoutError(problem(f"workspace {url}", "a workspace directory", "a file",
+                                      "Point atomline at the workspace's directory.")) from exc
         except (FileNotFoundError, zarr.errors.GroupNotFoundError) as exc:
             if not create:
                 raise NotFound(problem(f"workspace {url}", "an atomline workspace",
@@ -702,7 +705,7 @@ class Workspace:
     def _appended_labels(self, name: str, labels: Any, m: int) -> np.ndarray | None:
         """Validate the labels of appended rows against whether the records are labelled."""
         if isinstance(labels, (str, os.PathLike)):
-            labels = np.load(os.fspath(labels), allow_pickle=False)
+            labels = load_npy(labels)
         if not self.has_labels(name):
             if labels is not None:
                 raise InputError(problem(f"labels of rows appended to {name!r}", "none (unlabelled records)",
@@ -841,7 +844,7 @@ class Workspace:
         """
         _check_name(name, "labels name")
         if isinstance(labels, (str, os.PathLike)):
-            labels = np.load(os.fspath(labels), allow_pickle=False)
+            labels = load_npy(labels)
         labels = np.asarray(labels)
         n = self.records(name).shape[0]
         if labels.ndim != 1 or labels.dtype.kind not in "iu":
@@ -1568,6 +1571,39 @@ class Workspace:
 
 
 # ---------------------------------------------------------------------- validation
+#: The first bytes of every .npy file (numpy's format description, NEP 1).
+_NPY_MAGIC = b"\x93NUMPY"
+
+
+def load_npy(path: str | os.PathLike, *, mmap: bool = False) -> np.ndarray:
+    """Read a ``.npy`` file, memory-mapped with ``mmap``; refuse anything else clearly.
+
+    Raises
+    ------
+    InputError
+        No such file, not a ``.npy`` file (a text or ``.csv`` file, say), or an array of
+        Python objects (which would need unpickling to read).
+    """
+    path = os.fspath(path)
+    where = f"file {path}"
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(len(_NPY_MAGIC))
+    except FileNotFoundError:
+        raise InputError(problem(where, "a .npy file", "no such file", "Check the path.")) from None
+    except IsADirectoryError:
+        raise InputError(problem(where, "a .npy file", "a directory", "Give the path of the file.")) from None
+    if head != _NPY_MAGIC:
+        raise InputError(problem(where, "a .npy file (numpy.save's binary format)",
+                                 f"a file starting with {head!r}",
+                                 "Convert it first, e.g. numpy.save('x.npy', numpy.loadtxt(path, delimiter=','))."))
+    try:
+        return np.load(path, mmap_mode="r" if mmap else None, allow_pickle=False)
+    except ValueError as exc:  # numpy refuses object arrays without unpickling
+        raise InputError(problem(where, "a numeric .npy array", f"an array numpy cannot read safely ({exc})",
+                                 "Save a float or integer array with numpy.save.")) from exc
+
+
 def check_records(arr: Any, where: str) -> None:
     """Refuse records of a shape or dtype the stages cannot use.
 
@@ -1597,7 +1633,7 @@ def _array_like(source: Any) -> Any:
     """Rows to copy: a ``.npy`` path memory-mapped, an array (numpy, zarr, memmap) as it
     is, anything else (nested lists, array-likes) through ``np.asarray``."""
     if isinstance(source, (str, os.PathLike)):
-        return np.load(os.fspath(source), mmap_mode="r", allow_pickle=False)
+        return load_npy(source, mmap=True)
     if hasattr(source, "shape") and hasattr(source, "dtype"):
         return source
     try:

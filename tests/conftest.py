@@ -12,8 +12,12 @@ import uuid
 os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
 os.environ.setdefault("PREFECT_HOME", tempfile.mkdtemp(prefix="atomline-prefect-"))
 os.environ.setdefault("PREFECT_LOGGING_LEVEL", "WARNING")
-# The temporary API server can take long to start on a loaded two-core machine.
-os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "120")
+# Flows run against the suite's own server (``prefect_harness``): never a developer's server,
+# and never an ephemeral one Prefect would start by itself (which waits only a fixed time).
+os.environ.pop("PREFECT_API_URL", None)
+os.environ["PREFECT_SERVER_EPHEMERAL_ENABLED"] = "false"
+# A loaded two-core machine can take minutes to start a server with a fresh database.
+os.environ.setdefault("ATOMLINE_PREFECT_START_TIMEOUT", "900")
 
 import numpy as np
 import pytest
@@ -21,11 +25,16 @@ import pytest
 
 @pytest.fixture(scope="session")
 def prefect_harness():
-    """One temporary Prefect API for the whole session (entering it takes ~13 s)."""
-    from prefect.testing.utilities import prefect_test_harness
+    """One real ``prefect server start`` on a free loopback port for the whole session.
 
-    with prefect_test_harness():
-        yield
+    Started the way the CLI starts its temporary server (``flows/_server.py``), on the
+    session's fresh ``PREFECT_HOME``, and exported as ``PREFECT_API_URL`` to this process
+    and every subprocess a test starts; stopped with everything it started at the end.
+    """
+    from atomline.flows._server import temporary_server
+
+    with temporary_server() as url:
+        yield url
 
 
 @pytest.fixture

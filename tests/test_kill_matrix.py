@@ -9,12 +9,14 @@ children run in parallel; each rerun happens here, with plain stage functions.
 
 from __future__ import annotations
 
+import json
 import os
 import shutil
 import signal
 import subprocess
 import sys
 import textwrap
+import time
 
 import pytest
 from conftest import store_snapshot
@@ -28,7 +30,7 @@ TRAIN = dict(n_atoms=16, patch_size=128, stride=128, sample_patches=1000, seed=0
              coder_options={"n_nonzero": 3})
 
 _CHILD = textwrap.dedent("""
-    import os, re, signal, sys
+    import json, os, re, signal, sys
     from zarr.storage import LocalStore
 
     url, stage, pattern, nth = sys.argv[1], sys.argv[2], re.compile(sys.argv[3]), int(sys.argv[4])
@@ -40,6 +42,9 @@ _CHILD = textwrap.dedent("""
         if pattern.search(key):
             seen += 1
             if seen == nth:
+                from test_kill_matrix import descendants
+                with open(url + ".descendants.json", "w") as fh:
+                    json.dump(descendants(os.getpid()), fh)
                 os.kill(os.getpid(), signal.SIGKILL)
         return await _set(self, key, value)
 
@@ -48,6 +53,42 @@ _CHILD = textwrap.dedent("""
     run_stage(url, stage)
     sys.exit(3)  # the kill point was never reached
 """)
+
+
+def descendants(pid: int) -> dict[int, str]:
+    """Every process below ``pid`` (children, theirs, ...), with its start time, from /proc."""
+    parents: dict[int, list[int]] = {}
+    started: dict[int, str] = {}
+    for entry in os.listdir("/proc"):
+        if not entry.isdigit():
+            continue
+        try:
+            with open(f"/proc/{entry}/stat") as fh:
+                fields = fh.read().rsplit(")", 1)[1].split()
+        except OSError:  # ended while we looked
+            continue
+        parents.setdefault(int(fields[1]), []).append(int(entry))  # field 4: parent pid
+        started[int(entry)] = fields[19]  # field 22: start time, tells a reused pid apart
+    found, todo = {}, [pid]
+    while todo:
+        for child in parents.get(todo.pop(), []):
+            found[child] = started[child]
+            todo.append(child)
+    return found
+
+
+def still_alive(processes: dict) -> list[int]:
+    """Those of ``processes`` (pid -> start time) still running (zombies count as ended)."""
+    alive = []
+    for pid, start in processes.items():
+        try:
+            with open(f"/proc/{pid}/stat") as fh:
+                fields = fh.read().rsplit(")", 1)[1].split()
+        except OSError:
+            continue
+        if fields[19] == start and fields[0] != "Z":
+            alive.append(int(pid))
+    return alive
 
 
 def run_stage(url: str, stage: str) -> dict:
@@ -127,6 +168,8 @@ def test_sigkill_matrix_then_rerun_gives_the_reference(stages_ready, tmp_path):
     for url, stage, point, child in children:
         _, err = child.communicate(timeout=300)
         assert child.returncode == -signal.SIGKILL, f"{stage} / {point}: {err.decode()[-2000:]}"
+        with open(url + ".descendants.json") as fh:
+            assert still_alive(json.load(fh)) == [], f"{stage} / {point}: processes left behind"
         ws = Workspace.open(url)
         # Right after the kill: nothing incomplete looks complete, the pointer is safe.
         assert ws.promoted in (None, dict_id)
@@ -155,3 +198,47 @@ def test_sigkill_matrix_then_rerun_gives_the_reference(stages_ready, tmp_path):
         assert not any(ws.lease_holder(p) for p in ("promoted", f"dictionaries/{dict_id}",
                                                     encode.codes_path(dict_id, "vib"),
                                                     pool.features_path(dict_id, "vib")))
+
+
+def test_sigkill_of_a_command_leaves_no_temporary_server(tmp_path, demo_small):
+    """The CLI's temporary Prefect server dies with a command killed by SIGKILL."""
+    X, y = demo_small
+    url = str(tmp_path / "ws.zarr")
+    ws = Workspace.open(url, create=True)
+    ws.add_records("vib", X[:120], chunk_rows=40)
+    ws.add_labels("vib", y[:120])
+    env = {k: v for k, v in os.environ.items() if k != "PREFECT_API_URL"}  # its own server
+    # serve runs until stopped: the kill lands while the command and its server both run.
+    cmd = [sys.executable, "-m", "atomline.flows.cli", "serve", url, "vib", "--cron", "0 2 * * *",
+           "--atoms", "8", "--patch-size", "128", "--stride", "128", "--sample", "500"]
+    child = subprocess.Popen(cmd, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    try:
+        lines = []
+        for line in child.stderr:  # the serve line comes once the server answered its health check
+            lines.append(line)
+            if line.startswith("serving deployment"):
+                break
+        assert lines and lines[-1].startswith("serving deployment"), "".join(lines)[-3000:]
+        below = descendants(child.pid)
+        servers = [p for p in below if "server" in _cmdline(p) and "prefect" in _cmdline(p)]
+        assert servers, f"no Prefect server among {[_cmdline(p) for p in below]}"
+        child.kill()
+        child.wait(timeout=60)
+        left = still_alive(below)
+        for _ in range(100):  # the kernel delivers the server's SIGKILL as the command dies
+            if not left:
+                break
+            time.sleep(0.1)
+            left = still_alive(below)
+        assert left == [], [_cmdline(p) for p in left]
+    finally:
+        child.kill()
+        child.wait(timeout=60)
+
+
+def _cmdline(pid: int) -> str:
+    try:
+        with open(f"/proc/{pid}/cmdline", "rb") as fh:
+            return fh.read().replace(b"\0", b" ").decode()
+    except OSError:
+        return ""

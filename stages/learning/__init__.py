@@ -35,6 +35,7 @@ and ``checkpoint`` / ``checkpoint_every`` / ``resume`` (see :func:`learn`).
 
 from __future__ import annotations
 
+import inspect
 import json
 from collections.abc import Iterator
 from typing import Any, Callable, Iterable
@@ -55,6 +56,9 @@ from .subspaces import subspaces
 
 __all__ = [
     "learn",
+    "check_learner",
+    "takes_coder",
+    "TRAIN_CODER_OPTIONS",
     "METHODS",
     "LearnedDictionary",
     "reservoir_sample",
@@ -81,6 +85,29 @@ _PROBE_MAX = 10_000
 _PROBE_PIECE = 2048
 #: Prefix of the entries :func:`learn` adds to a learner's checkpoint state.
 _OWN = "learn."
+
+
+#: Options of the coder inside a learner when the caller gives none (the train stage's default).
+TRAIN_CODER_OPTIONS = {"n_nonzero": 5}
+
+
+def check_learner(method: str, n_atoms: int) -> None:
+    """Refuse an unknown learner or fewer than one atom (before any row is read)."""
+    if method not in METHODS:
+        raise InputError(problem("learning method", f"one of {sorted(METHODS)}",
+                                 repr(method), "Pick a listed method."))
+    if int(n_atoms) < 1:
+        raise InputError(problem("n_atoms", "a positive integer", repr(n_atoms),
+                                 "Ask for at least one atom."))
+
+
+def takes_coder(method: str) -> bool:
+    """Whether the learner codes its batches with a coder the caller picks.
+
+    pca, kmeans and subspaces fix their own coder (recorded in the result's params);
+    the others code their mini-batches with the coder given to them.
+    """
+    return method in METHODS and "coder" in inspect.signature(METHODS[method]).parameters
 
 
 def learn(
@@ -132,12 +159,7 @@ def learn(
         including ``train_error`` and ``holdout_error`` (relative residual energy
         ``Σ‖x − Wᵀz‖² / Σ‖x‖²`` with the dictionary's coder).
     """
-    if method not in METHODS:
-        raise InputError(problem("learning method", f"one of {sorted(METHODS)}",
-                                 repr(method), "Pick a listed method."))
-    if int(n_atoms) < 1:
-        raise InputError(problem("n_atoms", "a positive integer", repr(n_atoms),
-                                 "Ask for at least one atom."))
+    check_learner(method, n_atoms)
     seed = int(options.get("seed", 0))
     if resume is None or isinstance(source, np.ndarray):
         # In memory, the split and the fit are pure functions of the rows and the seed,

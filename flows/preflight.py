@@ -1,0 +1,142 @@
+"""Check a command's arguments against the workspace before anything starts.
+
+The CLI calls one of these before a flow runs and before a temporary Prefect server
+starts, so a trivial mistake (a negative ``--atoms``, a patch longer than the records, a
+wrong records name, an unknown coder) is refused in a second with the stage's own
+message. Every rule is the stage's (``atomline.stages.checks``, ``learning.check_learner``,
+``PatchGeometry``, ``coding.code_width``), applied to the workspace's metadata only: no
+chunk is read, nothing is written, and Prefect is not imported (except for ``serve``'s
+cron schedule, which only Prefect's parser can judge).
+
+Everything refused here would be refused by the stage too; what passes may still be
+refused inside the run (a bad chunk, a lease held by another run).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from atomline.stages.checks import (check_curve, check_folds, check_record_shape, check_regions,
+                                    check_retrain,
+                                    check_sample_size, check_tolerance, check_workers,
+                                    promoted_or_named, resolve_coder)
+from atomline.stages.errors import InputError, problem
+from atomline.stages.learning import TRAIN_CODER_OPTIONS, check_learner, takes_coder
+from atomline.stages.prep import PatchGeometry
+from atomline.stages.workspace import Workspace
+
+__all__ = ["check_runner", "check_train", "check_encode", "check_pool", "check_evaluate",
+           "check_nightly", "check_cron"]
+
+
+def check_runner(workers: int) -> None:
+    """Arguments of the task runner."""
+    check_workers(workers)
+
+
+def check_train(workspace: str, records: str, *, n_atoms: int, patch_size: Any, stride: Any,
+                method: str, coder: str, coder_options: dict | None, sample_patches: int,
+                **_unchecked: Any) -> PatchGeometry:
+    """What the train stage refuses before reading a row; returns the patch geometry.
+
+    ``_unchecked`` takes the remaining train parameters (seed, learner options), which
+    only the run itself can judge.
+    """
+    shape = _open(workspace).records(records).shape
+    check_learner(method, n_atoms)
+    check_sample_size(sample_patches, n_atoms)
+    geometry = PatchGeometry.for_records(shape[1:], _tuple(patch_size), _tuple(stride))
+    if takes_coder(method):
+        _check_coder(coder, n_atoms, TRAIN_CODER_OPTIONS if coder_options is None else coder_options)
+    return geometry
+
+
+def check_encode(workspace: str, records: str, *, dict_id: str | None, coder: str | None,
+                 coder_options: dict | None) -> None:
+    """What the encode stage refuses before coding a chunk."""
+    ws = _open(workspace)
+    arr = ws.records(records)
+    dict_id = promoted_or_named(ws, dict_id)
+    attrs = ws.load_dictionary(dict_id).attrs
+    check_record_shape(dict_id, PatchGeometry.from_attrs(attrs["geometry"]).record_shape, records,
+                       arr.shape[1:])
+    coder, options = resolve_coder(attrs, coder, coder_options)
+    _check_coder(coder, attrs["n_atoms"], options)
+
+
+def check_pool(workspace: str, records: str, *, dict_id: str | None, regions: Any) -> None:
+    """The pooling regions must fit the dictionary's patch grid."""
+    ws = _open(workspace)
+    ws.records(records)
+    dict_id = promoted_or_named(ws, dict_id)
+    check_regions(PatchGeometry.from_attrs(ws.load_dictionary(dict_id).attrs["geometry"]).grid,
+                  _tuple(regions))
+
+
+def check_evaluate(workspace: str, records: str, *, dict_id: str | None, labels: str | None,
+                   folds: int, learning_curve: list[float], **_unchecked: Any) -> None:
+    """The labels must allow the cross-validation asked for; the curve's shares be valid."""
+    ws = _open(workspace)
+    ws.records(records)
+    ws.load_dictionary(promoted_or_named(ws, dict_id))
+    _check_labels(ws, labels or records, folds)
+    check_curve(learning_curve)
+
+
+def check_nightly(workspace: str, records: str, *, retrain: str, tolerance: float, regions: Any,
+                  labels: str | None, folds: int, learning_curve: list[float], workers: int,
+                  **train: Any) -> None:
+    """Everything the nightly run's stages refuse on their arguments alone.
+
+    ``train`` holds the train parameters and the other nightly ones (gate, drift,
+    evaluation options) no rule applies to before the run.
+    """
+    check_workers(workers)
+    check_tolerance(tolerance)
+    ws = _open(workspace)
+    ws.records(records)
+    check_retrain(retrain, ws.promoted, workspace)
+    if retrain == "always" or ws.promoted is None:
+        grid = check_train(workspace, records, **train).grid
+    else:
+        grid = PatchGeometry.from_attrs(ws.load_dictionary(ws.promoted).attrs["geometry"]).grid
+    check_regions(grid, _tuple(regions))
+    _check_labels(ws, labels or records, folds)
+    check_curve(learning_curve)
+
+
+def check_cron(cron: str, timezone: str) -> None:
+    """A schedule Prefect can serve (its own parser judges the expression)."""
+    from prefect.schedules import Cron
+
+    try:
+        Cron(cron, timezone=timezone)
+    except ValueError as exc:
+        raise InputError(problem("--cron/--timezone", "a cron expression of five fields and a time zone "
+                                 "name", f"{cron!r} in {timezone!r} ({_first_line(exc)})",
+                                 "Use e.g. --cron '0 2 * * *' --timezone UTC.")) from None
+
+
+def _open(workspace: str) -> Workspace:
+    return Workspace.open(workspace)
+
+
+def _check_coder(coder: str, n_atoms: int, options: dict) -> None:
+    # A learned encoder is named by option and loaded by the stage; nothing to size here.
+    if coder != "learned":
+        from atomline.stages.coding import code_width
+
+        code_width(coder, n_atoms, **options)
+
+
+def _check_labels(ws: Workspace, name: str, folds: int) -> None:
+    check_folds(ws.labels(name), folds)
+
+
+def _first_line(exc: BaseException) -> str:
+    return str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+
+
+def _tuple(value: Any) -> Any:
+    """The CLI gives a list for several values; the stages take tuples."""
+    return tuple(value) if isinstance(value, list) else value

@@ -1,0 +1,231 @@
+"""The ``atomline`` command's errors: one clear message, no traceback, the right exit status.
+
+Mistakes are refused before any flow or Prefect server starts (``flows/preflight.py``);
+errors atomline raises on purpose exit 2, unexpected ones exit 1 with a log file, an
+interrupt exits 130; ``--json`` prints an error object on stdout.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+from atomline.flows import cli
+from atomline.stages.workspace import Workspace
+
+
+@pytest.fixture
+def labelled(tmp_path, demo_small):
+    """A local workspace with 120 labelled records of 2048 samples."""
+    X, y = demo_small
+    url = str(tmp_path / "ws.zarr")
+    ws = Workspace.open(url, create=True)
+    ws.add_records("vib", X[:120], chunk_rows=40)
+    ws.add_labels("vib", y[:120])
+    return url
+
+
+@pytest.fixture
+def no_server(monkeypatch):
+    """Fail the test if a command tries to start or reach a Prefect server."""
+    from atomline.flows import _server
+
+    def refuse():
+        raise AssertionError("a Prefect server was asked for")
+
+    monkeypatch.setattr(_server, "temporary_server", refuse)
+
+
+def _cli(capsys, *argv: str) -> tuple[int, str, str]:
+    try:
+        status = cli.main(list(argv))
+    except BaseException as exc:  # an escaped error is what the old command did
+        status = f"escaped {type(exc).__name__}: {exc}"
+    out, err = capsys.readouterr()
+    return status, out, err
+
+
+def test_missing_npy_is_refused_and_leaves_no_workspace(tmp_path, capsys):
+    url = str(tmp_path / "new.zarr")
+    status, _, err = _cli(capsys, "add-records", url, "vib", str(tmp_path / "absent.npy"))
+    assert status == 2
+    assert "absent.npy: expected a .npy file, found no such file" in err
+    assert not os.path.exists(url)
+
+
+def test_first_records_refused_leave_no_workspace(tmp_path, capsys):
+    X = np.zeros((10, 8), np.float32)
+    X[3, 2] = np.nan
+    np.save(tmp_path / "nan.npy", X)
+    url = str(tmp_path / "new.zarr")
+    status, _, err = _cli(capsys, "add-records", url, "vib", str(tmp_path / "nan.npy"))
+    assert status == 2 and "row 3: expected finite values" in err
+    assert not os.path.exists(url)
+
+
+def test_csv_given_as_records_is_named_as_such(tmp_path, capsys):
+    np.savetxt(tmp_path / "x.csv", np.ones((4, 8)), delimiter=",")
+    status, _, err = _cli(capsys, "add-records", str(tmp_path / "ws.zarr"), "vib", str(tmp_path / "x.csv"))
+    assert status == 2
+    assert "expected a .npy file (numpy.save's binary format)" in err and "numpy.loadtxt" in err
+    assert "allow_pickle" not in err
+    assert not os.path.exists(tmp_path / "ws.zarr")
+
+
+def test_csv_given_as_labels_is_named_as_such(labelled, tmp_path, capsys):
+    np.savetxt(tmp_path / "y.csv", np.zeros(120), delimiter=",")
+    status, _, err = _cli(capsys, "add-labels", labelled, "vib", str(tmp_path / "y.csv"), "--overwrite")
+    assert status == 2 and "expected a .npy file" in err and "allow_pickle" not in err
+
+
+def test_show_pointed_at_a_file(tmp_path, capsys):
+    (tmp_path / "notes.txt").write_text("not a workspace")
+    status, _, err = _cli(capsys, "show", str(tmp_path / "notes.txt"))
+    assert status == 2
+    assert err.strip() == (f"atomline: LayoutError: workspace {tmp_path / 'notes.txt'}: expected a "
+                           "workspace directory, found a file. Point atomline at the workspace's directory.")
+
+
+def test_bad_cron_is_refused_before_serving(labelled, capsys, no_server):
+    status, out, _ = _cli(capsys, "serve", labelled, "vib", "--cron", "every night", "--json")
+    assert status == 2
+    error = json.loads(out)
+    assert error["error"] == "InputError" and "'every night'" in error["message"]
+
+
+PATCHES = ["--patch-size", "128", "--stride", "128"]
+
+
+@pytest.mark.parametrize("argv, words", [
+    (["train", "{ws}", "vib", "--atoms", "-3"], "n_atoms: expected a positive integer, found -3"),
+    (["train", "{ws}", "vib", "--patch-size", "5000"], "patch size: expected between 1 and the record's extent 2048"),
+    (["train", "{ws}", "vibration"], "data/vibration: expected an existing records"),
+    (["train", "{ws}", "vib", "--coder", "omq"], "coding method: expected one of"),
+    (["train", "{ws}", "vib", "--method", "onlin"], "learning method: expected one of"),
+    (["train", "{ws}", "vib", "--sample", "10"], "sample_patches: expected at least n_atoms = 128"),
+    (["train", "{ws}", "vib", "--workers", "0"], "workers: expected a positive integer, found 0"),
+    (["nightly", "{ws}", "vib"], "regions: expected 1..[1] parts per axis"),
+    (["encode", "{ws}", "vib"], "expected a promoted dictionary or --dictionary"),
+    (["encode", "{ws}", "vib", "--dictionary", "d-absent"], "d-absent"),
+    (["nightly", "{ws}", "vib", *PATCHES, "--regions", "40"],
+     "regions: expected 1..[16] parts per axis"),
+    (["nightly", "{ws}", "vib", *PATCHES, "--folds", "100"], "labels: expected at least two classes with 100 rows each"),
+    (["nightly", "{ws}", "vib", *PATCHES, "--tolerance", "-0.1"], "tolerance: expected a margin ≥ 0"),
+    (["nightly", "{ws}", "vib", *PATCHES, "--curve", "0.5", "1.5"], "learning_curve: expected shares strictly between 0 and 1"),
+    (["nightly", "{ws}", "vib", *PATCHES, "--retrain", "never"], "expected a promoted dictionary (retrain='never')"),
+    (["serve", "{ws}", "vib", *PATCHES, "--atoms", "0"], "n_atoms: expected a positive integer, found 0"),
+])
+def test_mistakes_refused_before_any_server_starts(labelled, capsys, no_server, argv, words):
+    status, out, err = _cli(capsys, *[a.format(ws=labelled) for a in argv])
+    assert status == 2, err
+    assert words in err
+    assert len(err.strip().splitlines()) == 1 and out == ""
+
+
+def test_refusal_in_a_fresh_process_starts_nothing(labelled):
+    """Run as a user would, with no Prefect API set: the message alone, no server."""
+    env = {k: v for k, v in os.environ.items() if k != "PREFECT_API_URL"}
+    done = subprocess.run([sys.executable, "-m", "atomline.flows.cli", "train", labelled, "vib",
+                           "--atoms", "-3"], env=env, capture_output=True, text=True, timeout=300)
+    assert done.returncode == 2
+    assert done.stderr.strip() == ("atomline: InputError: n_atoms: expected a positive integer, found -3. "
+                                   "Ask for at least one atom.")
+    assert done.stdout == ""
+
+
+def test_unexpected_error_gives_a_paragraph_and_a_log(labelled, tmp_path, capsys, monkeypatch):
+    monkeypatch.setenv("ATOMLINE_LOG_DIR", str(tmp_path / "logs"))
+
+    def broken(self):
+        raise ZeroDivisionError("the summary divided by zero")
+
+    monkeypatch.setattr(Workspace, "summary", broken)
+    status, _, err = _cli(capsys, "show", labelled)
+    assert status == 1
+    assert "Traceback" not in err and len(err.strip().splitlines()) == 1
+    assert "unexpected ZeroDivisionError: the summary divided by zero" in err
+    (log,) = (tmp_path / "logs").iterdir()
+    assert str(log) in err
+    text = log.read_text()
+    assert "Traceback" in text and "in broken" in text and "ZeroDivisionError" in text
+
+    status, out, err = _cli(capsys, "show", labelled, "--json")
+    error = json.loads(out)
+    assert status == 1 and error["error"] == "ZeroDivisionError" and error["exit_status"] == 1
+    assert os.path.exists(error["log"])
+
+    status, _, err = _cli(capsys, "show", labelled, "--debug")
+    assert status == 1 and "Traceback" in err and "in broken" in err
+
+
+def test_debug_shows_the_traceback_of_an_atomline_error(tmp_path, capsys):
+    status, _, err = _cli(capsys, "show", str(tmp_path / "absent.zarr"), "--debug")
+    assert status == 2 and "Traceback" in err and "NotFound" in err
+
+
+def test_interrupt_exits_130_with_one_line(labelled, capsys, monkeypatch):
+    def interrupted(self):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(Workspace, "summary", interrupted)
+    status, _, err = _cli(capsys, "show", labelled)
+    assert status == 130
+    assert err.strip() == "atomline: interrupted; finished chunks are kept, a rerun resumes"
+
+
+@pytest.mark.slow
+@pytest.mark.usefixtures("prefect_harness")
+def test_ctrl_c_during_serve_exits_130_with_one_line(labelled):
+    child = subprocess.Popen([sys.executable, "-m", "atomline.flows.cli", "serve", labelled, "vib",
+                              *PATCHES, "--atoms", "8"],
+                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        first = child.stderr.readline()
+        assert first.startswith("serving deployment"), first + child.stderr.read()[-3000:]
+        child.send_signal(signal.SIGINT)
+        out, err = child.communicate(timeout=120)
+    finally:
+        child.kill()
+    assert child.returncode == 130, err[-3000:]
+    assert "Traceback" not in err
+    assert err.strip().splitlines()[-1] == "atomline: interrupted; finished chunks are kept, a rerun resumes"
+
+
+@pytest.mark.slow
+@pytest.mark.usefixtures("prefect_harness")
+def test_error_inside_the_nightly_flow_is_one_message(labelled):
+    """An error only the run can find (a learner option) ends the flow: one message, JSON
+    on stdout, and no traceback from Prefect's flow-run logging."""
+    done = subprocess.run([sys.executable, "-m", "atomline.flows.cli", "nightly", labelled, "vib",
+                           "--atoms", "8", "--patch-size", "128", "--stride", "128", "--sample", "500",
+                           "--learner-option", "no_such_option=1", "--json"],
+                          capture_output=True, text=True, timeout=600)
+    assert done.returncode == 2, done.stderr[-3000:]
+    error = json.loads(done.stdout)
+    assert error["error"] == "InputError" and "no_such_option" in error["message"]
+    assert "Traceback" not in done.stderr and "TypeError" not in done.stderr
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("setting", [{"ATOMLINE_PREFECT_START_TIMEOUT": "0"},
+                                     {"PREFECT_HOME": "/dev/null/prefect-home"}],
+                         ids=["no-time", "broken-home"])
+def test_server_that_cannot_start_gives_one_paragraph(labelled, setting):
+    env = {k: v for k, v in os.environ.items() if k != "PREFECT_API_URL"}
+    env.update(setting)
+    done = subprocess.run([sys.executable, "-m", "atomline.flows.cli", "train", labelled, "vib",
+                           "--atoms", "8", "--sample", "500"],
+                          env=env, capture_output=True, text=True, timeout=600)
+    assert done.returncode == 2, done.stderr[-3000:]
+    starting, message = done.stderr.strip().splitlines()
+    assert starting.startswith("atomline: starting a temporary Prefect server")
+    assert message.startswith("atomline: PrefectUnavailable: the temporary Prefect server this command "
+                              "needs: expected an answer at http://127.0.0.1:")
+    assert "prefect server start" in message and "ATOMLINE_PREFECT_START_TIMEOUT" in message
+    assert "Traceback" not in done.stderr
