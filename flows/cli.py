@@ -729,6 +729,9 @@ def _describe_nightly(r: dict) -> str:
                      f"difference {g['difference']:+.3f}, 95% interval [{g['low']:+.3f}, {g['high']:+.3f}], "
                      f"tolerance {r['tolerance']}")
     lines.append(f"promoted dictionary now: {r['promoted_id']}")
+    if r.get("already_decided"):
+        lines.append(f"these inputs were decided already ({r['already_decided']}): "
+                     "that decision is reported, nothing was evaluated or decided again")
     return "\n".join(lines)
 
 

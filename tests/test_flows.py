@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 
 from atomline.flows import encode_flow, nightly_flow
+from atomline.flows.cli import main
 from atomline.flows.runners import plan_batches, task_runner
 from atomline.stages.errors import InputError
 from atomline.stages.workspace import Workspace
@@ -26,7 +27,7 @@ def archive(demo_small):
     return url
 
 
-def test_nightly_learns_encodes_pools_and_beats_raw(archive):
+def test_nightly_learns_encodes_pools_and_beats_raw(archive, capsys):
     report = nightly_flow.with_options(task_runner=task_runner("threads", 2))(archive, "vib", **NIGHTLY)
     assert report["outcome"] == "first"
     assert report["promoted_id"] == report["candidate_id"] == Workspace.open(archive).promoted
@@ -45,6 +46,12 @@ def test_nightly_learns_encodes_pools_and_beats_raw(archive):
     assert again["candidate"]["run_id"] == cand["run_id"] and again["candidate"]["reused"]
     assert again["encode"]["encoded"] == 0 and again["encode"]["skipped"] == 15
     assert (len(ws.evaluations()), len(ws.decisions())) == history == (1, 1)
+    # The command line with the same options says so.
+    capsys.readouterr()
+    assert main(["nightly", archive, "vib", "--atoms", "48", "--patch-size", "64", "--stride", "32",
+                 "--sample", "6000", "--regions", "2", "--nonzero", "4"]) == 0
+    assert f"these inputs were decided already ({report['decision_id']})" in capsys.readouterr().out
+    assert (len(ws.evaluations()), len(ws.decisions())) == (1, 1)
     # Other options that reach the same dictionary are a new run: nothing to promote.
     other = nightly_flow(archive, "vib", tolerance=0.02, **NIGHTLY)
     assert other["outcome"] == "unchanged" and "already_decided" not in other
