@@ -334,3 +334,30 @@ def test_writer_paused_past_its_ttl_commits_nothing_after_another_run_took_the_l
         if writer.poll() is None:
             writer.send_signal(signal.SIGCONT)
             writer.kill()
+
+
+@pytest.mark.slow
+@pytest.mark.usefixtures("prefect_harness")
+def test_encode_flow_stops_at_once_when_its_lease_is_taken(tmp_path, demo_small, monkeypatch):
+    from atomline.flows import encode_flow
+    from atomline.stages.errors import LeaseLost
+
+    X, _ = demo_small
+    url = str(tmp_path / "ws.zarr")
+    ws, dict_id, prepared = _encode_ready(url, X)
+    path = encode.codes_path(dict_id, "vib")
+    real_code, calls = encode.code, []
+
+    def code_while_another_run_takes_the_lease(*args, **kwargs):
+        calls.append(1)
+        if len(calls) == 2:  # while chunk 1 is being coded, another run takes the lease
+            _plant(ws, path, host="elsewhere", pid=1, age=0, ttl=600, run="second run")
+        return real_code(*args, **kwargs)
+
+    monkeypatch.setattr(encode, "code", code_while_another_run_takes_the_lease)
+    # LeaseLost (not LeaseHeld): the flow handed its token to the task, which checked it.
+    with pytest.raises(LeaseLost, match="second run"):
+        encode_flow(url, "vib", dict_id=dict_id, workers=1, batches_per_worker=1)
+    assert len(calls) == 2  # a lost lease is not retried
+    assert Workspace.open(url).output(path).pending() == prepared["pending"][1:]
+    assert ws.lease_holder(path)["run"] == "second run"
