@@ -215,6 +215,14 @@ class Lease:
         self._store.overwrite(self.info)
         return True
 
+    def check(self) -> None:
+        """Raise :class:`LeaseLost` unless the lease is still ours (see :func:`check_held`).
+
+        For writers in this process that commit other things than output chunks
+        (a dictionary, its checkpoints).
+        """
+        check_held(self._store, self.info.output, self.info.token, self._registry)
+
     def _lose(self) -> None:
         self.lost = True
         self._stop.set()

@@ -109,7 +109,7 @@ def train_dictionary(
         return _manifest(stored.attrs, dict_id, reused=True)
 
     # One run trains a given dictionary at a time; a second one is refused, naming the first.
-    with ws.lease(f"dictionaries/{dict_id}", run=run, break_existing=break_lease):
+    with ws.lease(f"dictionaries/{dict_id}", run=run, break_existing=break_lease) as held:
         if ws.has_dictionary(dict_id):  # finished by another run just before we took the lease
             return _manifest(ws.load_dictionary(dict_id).attrs, dict_id, reused=True)
         sample = _sample_patches(arr, geometry, sample_patches, seed,
@@ -118,7 +118,7 @@ def train_dictionary(
         # ends with the same atoms as an uninterrupted run.
         learned = learn(
             sample, n_atoms, method, preprocessing=normaliser, seed=seed,
-            checkpoint=lambda state: ws.save_checkpoint(dict_id, state),
+            checkpoint=lambda state: _save_checkpoint(ws, held, dict_id, state),
             resume=ws.load_checkpoint(dict_id), **coder_kw, **learner_options,
         )
         attrs = dict(
@@ -131,8 +131,15 @@ def train_dictionary(
             params=learned.params,
             diagnostics=learned.diagnostics,
         )
+        held.check()  # a run that lost its lease stores nothing
         stored = ws.save_dictionary(dict_id, learned.atoms, attrs, learned.preprocessing.arrays())
     return _manifest(stored.attrs, dict_id, reused=False)
+
+
+def _save_checkpoint(ws: Workspace, held, dict_id: str, state: dict) -> None:
+    """Store a learner checkpoint, only while the dictionary's lease is still this run's."""
+    held.check()
+    ws.save_checkpoint(dict_id, state)
 
 
 def _manifest(attrs: dict, dict_id: str, reused: bool) -> dict:

@@ -366,3 +366,28 @@ def test_encode_flow_stops_at_once_when_its_lease_is_taken(tmp_path, demo_small,
     assert len(calls) == 2  # a lost lease is not retried
     assert Workspace.open(url).output(path).pending() == prepared["pending"][1:]
     assert ws.lease_holder(path)["run"] == "second run"
+
+
+def test_training_that_lost_its_lease_stores_no_dictionary(tmp_path, demo_small, monkeypatch):
+    from atomline.stages.errors import LeaseLost
+
+    X, _ = demo_small
+    ws = Workspace.open(str(tmp_path / "ws.zarr"), create=True)
+    ws.add_records("vib", X[:80], chunk_rows=20)
+    real_learn = train.learn
+
+    def learn_while_another_run_takes_the_lease(*args, **kwargs):
+        learned = real_learn(*args, **kwargs)
+        (lease_path,) = _held_dictionary_leases(ws)
+        _plant(ws, lease_path, host="elsewhere", pid=1, age=0, ttl=600, run="second trainer")
+        return learned
+
+    monkeypatch.setattr(train, "learn", learn_while_another_run_takes_the_lease)
+    with pytest.raises(LeaseLost, match="second trainer"):
+        train.train_dictionary(ws, "vib", **TRAIN)
+    assert ws.dictionary_ids() == []
+
+
+def _held_dictionary_leases(ws: Workspace) -> list[str]:
+    folder = os.path.join(ws.url, ".leases", "dictionaries")
+    return [f"dictionaries/{name[:-len('.json')]}" for name in os.listdir(folder)]
