@@ -478,7 +478,8 @@ class Workspace:
         """
         url = _check_url(os.fspath(url), "workspace URL")
         storage_options = resolve_storage_options(url, storage_options)
-        kwargs = {"storage_options": storage_options} if storage_options else {}
+        # A local directory (a path or file:// URL) takes no storage options: its store is ours.
+        kwargs = {"storage_options": storage_options} if storage_options and _local_dir(url) is None else {}
         try:
             root = zarr.open_group(store=_store(url, "r+"), mode="r+", **kwargs)
         except (FileExistsError, NotADirectoryError) as exc:  # a local file, not a directory
@@ -1897,15 +1898,24 @@ def resolve_storage_options(url: str, given: dict | None = None) -> dict | None:
     return options
 
 
+def _local_dir(url: str) -> str | None:
+    """The directory of a local path or ``file://`` URL; None for any other URL."""
+    if url.startswith("file://"):
+        return url[len("file://"):]
+    return None if "://" in url else url
+
+
 def _store(url: str, mode: str) -> Any:
-    """What Zarr opens for a workspace URL: a local directory through the store that keeps
-    every key inside it (:class:`._safety.ContainedLocalStore`), any other URL as it is."""
-    if "://" in url:
+    """What Zarr opens for a workspace URL: a local directory (path or ``file://``) through
+    the store that keeps every key inside it (:class:`._safety.ContainedLocalStore`), any
+    other URL as it is."""
+    directory = _local_dir(url)
+    if directory is None:
         return url
     from zarr.core.sync import sync
 
     try:
-        return sync(ContainedLocalStore.open(url, mode=mode))
+        return sync(ContainedLocalStore.open(directory, mode=mode))
     except OSError as exc:  # creating the directory on a read-only mount
         if unwritable(exc):
             raise not_writable(f"workspace {url}", exc) from exc

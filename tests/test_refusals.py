@@ -344,12 +344,13 @@ def _outside_tree(path: pathlib.Path) -> dict[str, bytes]:
     return {str(p.relative_to(path)): p.read_bytes() for p in path.rglob("*") if p.is_file()}
 
 
-def test_folder_linked_outside_the_workspace_refused_on_read_and_write(copy_of, tmp_path):
+@pytest.mark.parametrize("as_url", [False, True], ids=["path", "file-url"])
+def test_folder_linked_outside_the_workspace_refused_on_read_and_write(copy_of, tmp_path, as_url):
     root, dict_id, _ = copy_of
     outside = tmp_path / "outside"
     shutil.move(root / "codes", outside)  # the codes now live elsewhere, reached by a link
     (root / "codes").symlink_to(outside, target_is_directory=True)
-    ws = Workspace.open(str(root))
+    ws = Workspace.open(f"file://{root}" if as_url else str(root))
     before = _outside_tree(outside)
     with pytest.raises(UnsafeStore, match="leading outside") as caught:  # read
         ws.output(encode.codes_path(dict_id, "vib"))
