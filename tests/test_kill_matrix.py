@@ -219,9 +219,14 @@ def test_sigkill_of_a_command_leaves_no_temporary_server(tmp_path, demo_small):
             if line.startswith("serving deployment"):
                 break
         assert lines and lines[-1].startswith("serving deployment"), "".join(lines)[-3000:]
-        below = descendants(child.pid)
-        servers = [p for p in below if "server" in _cmdline(p) and "prefect" in _cmdline(p)]
-        assert servers, f"no Prefect server among {[_cmdline(p) for p in below]}"
+        for _ in range(3000):  # wait for the API server below the command (any way it was started)
+            below = descendants(child.pid)
+            if any("prefect" in _cmdline(p) and ("server" in _cmdline(p) or "uvicorn" in _cmdline(p))
+                   for p in below):
+                break
+            time.sleep(0.1)
+        else:
+            raise AssertionError(f"no Prefect server among {[_cmdline(p) for p in below]}")
         child.kill()
         child.wait(timeout=60)
         left = still_alive(below)
