@@ -59,8 +59,9 @@ def start_timeout() -> float:
 def temporary_server() -> Iterator[str]:
     """Make a Prefect API available for the body; yield its URL.
 
-    Uses ``PREFECT_API_URL`` when set (environment or Prefect profile); otherwise starts a temporary server (see the
-    module docstring) and stops it, with everything it started, when the body ends.
+    Uses ``PREFECT_API_URL`` when set (environment or Prefect profile); otherwise starts a
+    temporary server (see the module docstring) and stops it, with everything it started,
+    when the body ends.
 
     Raises
     ------

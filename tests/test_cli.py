@@ -212,6 +212,18 @@ def test_error_inside_the_nightly_flow_is_one_message(labelled):
     assert "Traceback" not in done.stderr and "TypeError" not in done.stderr
 
 
+@pytest.mark.parametrize("text", ["soon", "-5"])
+def test_start_timeout_setting_must_be_seconds(monkeypatch, text):
+    from atomline.flows import _server
+    from atomline.stages.errors import InputError
+
+    monkeypatch.setenv("ATOMLINE_PREFECT_START_TIMEOUT", text)
+    with pytest.raises(InputError, match="ATOMLINE_PREFECT_START_TIMEOUT: expected a number of seconds"):
+        _server.start_timeout()
+    monkeypatch.delenv("ATOMLINE_PREFECT_START_TIMEOUT")
+    assert _server.start_timeout() == 300
+
+
 @pytest.mark.slow
 @pytest.mark.parametrize("setting", [{"ATOMLINE_PREFECT_START_TIMEOUT": "0"},
                                      {"PREFECT_HOME": "/dev/null/prefect-home"}],
