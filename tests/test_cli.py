@@ -128,6 +128,35 @@ def test_mistakes_refused_before_any_server_starts(labelled, capsys, no_server, 
     assert len(err.strip().splitlines()) == 1 and out == ""
 
 
+@pytest.fixture
+def trained(labelled, demo_small):
+    """The labelled workspace with a dictionary trained by the stage (no Prefect), and
+    records of another length beside it."""
+    from atomline.stages.train import train_dictionary
+
+    ws = Workspace.open(labelled)
+    ws.add_records("short", demo_small[0][:40, :1024], chunk_rows=40)
+    dict_id = train_dictionary(ws, "vib", n_atoms=8, patch_size=128, stride=128, sample_patches=500)["dict_id"]
+    return labelled, dict_id
+
+
+@pytest.mark.parametrize("argv, words", [
+    (["encode", "{ws}", "vib", "--coder", "omq", "--dictionary", "{d}"], "coding method: expected one of"),
+    (["encode", "{ws}", "vib", "--coder-option", "n_nonzeros=3", "--dictionary", "{d}"], "unknown ['n_nonzeros']"),
+    (["encode", "{ws}", "short", "--dictionary", "{d}"], "records shaped (2048,), found records 'short' shaped (1024,)"),
+    (["pool", "{ws}", "vib", "--regions", "17", "--dictionary", "{d}"], "regions: expected 1..[16] parts per axis"),
+    (["evaluate", "{ws}", "vib", "--folds", "1", "--dictionary", "{d}"], "folds: expected at least 2, found 1"),
+    (["evaluate", "{ws}", "vib", "--labels", "short", "--dictionary", "{d}"], "labels/short"),
+    (["train", "{ws}", "vib", "--coder-option", "bogus=1"], "options of coder 'omp': expected option names"),
+])
+def test_mistakes_against_a_dictionary_refused_before_any_server(trained, capsys, no_server, argv, words):
+    url, dict_id = trained
+    status, out, err = _cli(capsys, *[a.format(ws=url, d=dict_id) for a in argv])
+    assert status == 2, err
+    assert words in err
+    assert len(err.strip().splitlines()) == 1 and out == ""
+
+
 def test_refusal_in_a_fresh_process_starts_nothing(labelled):
     """Run as a user would, with no Prefect API set: the message alone, no server."""
     env = {k: v for k, v in os.environ.items() if k != "PREFECT_API_URL"}
