@@ -51,10 +51,14 @@ def main(argv: list[str] | None = None) -> int:
     except AtomlineError as exc:
         return _fail(args, type(exc).__name__, str(exc), 2)
     except Exception as exc:  # anything not raised on purpose: one paragraph and a log file
-        log = _write_log(args, exc)
+        try:
+            log = _write_log(args, exc)
+            where = f"the full traceback is in {log}"
+        except OSError as failed:  # an unwritable log directory must not hide the error
+            log, where = None, f"no log file could be written ({failed})"
         message = (f"unexpected {type(exc).__name__}: {exc}. This is not a known atomline error, "
-                   f"so it may be a bug; the full traceback is in {log}. Rerun with --debug to "
-                   f"see it here, and include the log file when reporting it.")
+                   f"so it may be a bug; {where}. Rerun with --debug to see the traceback here, "
+                   f"and include the log file when reporting it.")
         return _fail(args, type(exc).__name__, message, 1, log=log)
     if args.json:
         print(json.dumps(result, indent=2, default=_plain))

@@ -193,6 +193,19 @@ def test_unexpected_error_gives_a_paragraph_and_a_log(labelled, tmp_path, capsys
     assert status == 1 and "Traceback" in err and "in broken" in err
 
 
+def test_unexpected_error_with_an_unwritable_log_directory(labelled, tmp_path, capsys, monkeypatch):
+    (tmp_path / "file").write_text("")
+    monkeypatch.setenv("ATOMLINE_LOG_DIR", str(tmp_path / "file" / "logs"))  # below a file
+
+    def broken(self):
+        raise ZeroDivisionError("the summary divided by zero")
+
+    monkeypatch.setattr(Workspace, "summary", broken)
+    status, _, err = _cli(capsys, "show", labelled)
+    assert status == 1 and "Traceback" not in err and len(err.strip().splitlines()) == 1
+    assert "the summary divided by zero" in err and "no log file could be written" in err
+
+
 def test_debug_shows_the_traceback_of_an_atomline_error(tmp_path, capsys):
     status, _, err = _cli(capsys, "show", str(tmp_path / "absent.zarr"), "--debug")
     assert status == 2 and "Traceback" in err and "NotFound" in err

@@ -337,7 +337,7 @@ def main() -> None:
     parser.add_argument("--keep", help="directory for the workspace (default: a temporary one, removed)")
     args = parser.parse_args()
 
-    from prefect.testing.utilities import prefect_test_harness
+    from atomline.flows._server import temporary_server
 
     for noisy in ("distributed", "distributed.scheduler", "distributed.nanny", "distributed.core",
                   "distributed.worker", "distributed.http.proxy"):
@@ -352,7 +352,7 @@ def main() -> None:
     os.makedirs(scratch, exist_ok=True)
     print(f"atomline scale benchmark — {os.cpu_count()} cores, numpy {np.__version__}, workspace {url}")
     print(f"records: {D}-dimensional, dictionary {K} atoms, OMP with {NONZERO} nonzeros")
-    with prefect_test_harness():
+    with temporary_server():  # PREFECT_API_URL if set, else a server for the benchmark's length
         ws = Workspace.open(url, create=True)
         t0 = time.perf_counter()
         fill_records(ws, "sig", args.rows)
