@@ -102,9 +102,18 @@ def test_artifacts_are_created_and_read_back(archive, two_nights):
 
 
 def test_fail_on_regression_ends_in_failed_state(archive, two_nights):
+    ws = Workspace.open(archive)
+    history = (len(ws.evaluations()), len(ws.decisions()))
     state = nightly_flow(archive, "vib", return_state=True, fail_on_regression=True, **WORSE)
     assert state.is_failed() and state.name == "Regression"
-    assert state.result(raise_on_failure=False)["outcome"] == "regression"
+    report = state.result(raise_on_failure=False)
+    assert report["outcome"] == "regression"
+    # The second night's inputs again: its decision is reported (alerting options are not
+    # part of the run's key), and nothing is evaluated or decided twice.
+    second = two_nights[1].result()
+    assert report["already_decided"] == second["decision_id"]
+    assert report["gate"] == second["gate"] and report["promoted"]["run_id"] == second["promoted"]["run_id"]
+    assert (len(ws.evaluations()), len(ws.decisions())) == history
 
 
 def test_evaluate_flow_stores_pictures_and_artifacts(archive, two_nights):
