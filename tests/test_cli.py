@@ -168,6 +168,15 @@ def test_refusal_in_a_fresh_process_starts_nothing(labelled):
     assert done.stdout == ""
 
 
+def test_preflight_does_not_import_prefect():
+    """Importing Prefect takes seconds; the checks run without it (serve's cron aside)."""
+    done = subprocess.run([sys.executable, "-c", "import sys, atomline.flows.preflight, atomline.flows.cli; "
+                           "print(sorted(m for m in sys.modules if m.split('.')[0] == 'prefect'))"],
+                          capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip() == "[]"
+
+
 def test_unexpected_error_gives_a_paragraph_and_a_log(labelled, tmp_path, capsys, monkeypatch):
     monkeypatch.setenv("ATOMLINE_LOG_DIR", str(tmp_path / "logs"))
 
