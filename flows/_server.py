@@ -72,6 +72,7 @@ def temporary_server() -> Iterator[str]:
 
     configured = PREFECT_API_URL.value()  # from the environment or the active Prefect profile
     if configured:
+        _check_answers(configured)
         yield configured
         return
     timeout = start_timeout()
@@ -132,6 +133,22 @@ def _healthy(url: str) -> bool:
             return response.status == 200
     except (urllib.error.URLError, OSError, ValueError):
         return False
+
+
+def _check_answers(url: str) -> None:
+    """Refuse a configured API nothing listens at (any HTTP answer, even an error, will do:
+    a hosted API may answer its health path differently)."""
+    try:
+        urllib.request.urlopen(f"{url.rstrip('/')}/health", timeout=30).close()
+    except urllib.error.HTTPError:
+        return
+    except (urllib.error.URLError, OSError, ValueError) as exc:
+        reason = getattr(exc, "reason", exc)
+        raise PrefectUnavailable(problem(
+            f"the Prefect API at PREFECT_API_URL={url}", "a server answering there",
+            f"no answer ({reason})",
+            "Start that server (`prefect server start`), correct PREFECT_API_URL, or unset it "
+            "so that the command starts a temporary server of its own.")) from None
 
 
 def _unavailable(url: str, found: str, log) -> PrefectUnavailable:

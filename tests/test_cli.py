@@ -292,3 +292,22 @@ def test_server_that_cannot_start_gives_one_paragraph(labelled, setting):
                               "needs: expected an answer at http://127.0.0.1:")
     assert "prefect server start" in message and "ATOMLINE_PREFECT_START_TIMEOUT" in message
     assert "Traceback" not in done.stderr
+
+
+@pytest.mark.slow
+def test_configured_server_that_does_not_answer(labelled):
+    import socket
+
+    with socket.socket() as s:  # a port nothing listens on
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    env = dict(os.environ, PREFECT_API_URL=f"http://127.0.0.1:{port}/api")
+    done = subprocess.run([sys.executable, "-m", "atomline.flows.cli", "train", labelled, "vib",
+                           "--atoms", "8", "--sample", "500"],
+                          env=env, capture_output=True, text=True, timeout=600)
+    assert done.returncode == 2, done.stderr[-3000:]
+    assert done.stderr.strip() == (
+        f"atomline: PrefectUnavailable: the Prefect API at PREFECT_API_URL=http://127.0.0.1:{port}/api: "
+        "expected a server answering there, found no answer ([Errno 111] Connection refused). Start "
+        "that server (`prefect server start`), correct PREFECT_API_URL, or unset it so that the "
+        "command starts a temporary server of its own.")
