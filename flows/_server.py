@@ -86,7 +86,10 @@ def temporary_server() -> Iterator[str]:
         try:
             _wait_healthy(url, process, timeout, log)
             with _api_url(url):
-                yield url
+                try:
+                    yield url
+                finally:
+                    _send_pending(url)
         finally:
             _stop(process)
 
@@ -180,6 +183,35 @@ def _api_url(url: str) -> Iterator[None]:
             os.environ.pop("PREFECT_API_URL", None)
         else:
             os.environ["PREFECT_API_URL"] = before
+
+
+def _send_pending(url: str) -> None:
+    """Send the log lines and events Prefect still holds to the server before it stops.
+
+    Prefect's background workers send them in batches; stopping the server first loses
+    them and prints "Error logging to API" when the process exits.
+    """
+    import inspect
+
+    from prefect.events.worker import EventsWorker
+    from prefect.logging.handlers import APILogWorker
+    from prefect.utilities.asyncutils import run_coro_as_sync
+
+    async def drain() -> None:
+        try:
+            pending = APILogWorker.instance().drain()
+            if inspect.isawaitable(pending):
+                await pending
+        except RuntimeError:  # the log worker was never started
+            pass
+        pending = EventsWorker.drain_all()
+        if inspect.isawaitable(pending):
+            await pending
+
+    try:
+        run_coro_as_sync(drain())
+    except Exception:  # sending leftovers must never replace the command's own outcome
+        pass
 
 
 def _stop(process: subprocess.Popen) -> None:
