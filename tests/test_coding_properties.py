@@ -1,4 +1,4 @@
-"""Properties every coder keeps: per-row results (chunking does not change a byte), the
+"""Properties every coder keeps: the
 layout's invariants, finite output, bounded width; hypothesis explores shapes/dtypes."""
 
 from __future__ import annotations
@@ -8,7 +8,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from atomline.stages.coding import METHODS, code, code_width, fit_learned_encoder
+from atomline.stages.coding import METHODS, code, code_width
 
 K, D = 24, 10
 OPTIONS = {
@@ -31,38 +31,11 @@ def _atoms(rng, k, d, dtype=np.float64):
     return (W / np.linalg.norm(W, axis=1, keepdims=True)).astype(dtype)
 
 
-@pytest.fixture(scope="module")
-def encoder():
-    rng = np.random.default_rng(1)
-    W = _atoms(np.random.default_rng(0), K, D)
-    return fit_learned_encoder(rng.standard_normal((200, D)), W, "fista", 3, lam=0.3, n_steps=30)
-
-
-def _options(method, encoder):
-    return {"encoder": encoder} if method == "learned" else OPTIONS[method]
-
-
 def test_every_method_is_covered():
     assert set(OPTIONS) | {"learned"} == set(METHODS)
 
 
-@pytest.mark.parametrize("dtype", [np.float32, np.float64])
-@pytest.mark.parametrize("method", sorted(METHODS))
-def test_coding_in_two_pieces_gives_identical_bytes(method, dtype, encoder):
-    # The design's chunk rule: results depend on each row only.
-    rng = np.random.default_rng(2)
-    W = _atoms(np.random.default_rng(0), K, D)
-    X = rng.standard_normal((37, D)).astype(dtype)
-    opts = _options(method, encoder)
-    whole = code(X, W, method, **opts)
-    parts = [code(X[:13], W, method, **opts), code(X[13:14], W, method, **opts),
-             code(X[14:], W, method, **opts)]
-    for name in ("index", "value", "count"):
-        joined = np.concatenate([getattr(p, name) for p in parts])
-        assert joined.dtype == getattr(whole, name).dtype
-        assert joined.tobytes() == getattr(whole, name).tobytes(), name
-    assert whole.value.dtype == dtype
-    assert whole.width == code_width(method, K, **opts)
+# Row invariance (chunking, place, alignment, CPU kind): tests/test_row_invariance.py.
 
 
 def _check_layout(c, width, n_rows):

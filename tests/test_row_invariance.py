@@ -23,7 +23,7 @@ import numpy as np
 import pytest
 from threadpoolctl import threadpool_limits
 
-from atomline.stages.coding import METHODS, code, fit_learned_encoder, gram
+from atomline.stages.coding import METHODS, code, code_width, fit_learned_encoder, gram
 from atomline.stages.coding._common import lipschitz
 from atomline.stages.coding._rows import product, product_blocks, row_energies, row_means
 from atomline.stages.prep import Normaliser
@@ -127,8 +127,9 @@ def _opts(method, encoder):
 @pytest.mark.parametrize("dtype", [np.float32, np.float64])
 @pytest.mark.parametrize("method", sorted(METHODS))
 def test_every_row_alone_misaligned_or_shifted_gives_the_same_bytes(method, dtype, encoder):
-    # Pieces of 1 to 13 rows put each row at every place of a 12-row GEMM tile (the tile
-    # whose rows 6-11 came out different on OpenBLAS's Haswell kernels).
+    # The design's chunk rule: results depend on each row only. Pieces of 1 to 13 rows put
+    # each row at every place of a 12-row GEMM tile (the tile whose rows 6-11 came out
+    # different on OpenBLAS's Haswell kernels).
     rng = np.random.default_rng(2)
     W = _unit_atoms(np.random.default_rng(0), K, D)
     X = rng.standard_normal((37, D)).astype(dtype)
@@ -145,6 +146,8 @@ def test_every_row_alone_misaligned_or_shifted_gives_the_same_bytes(method, dtyp
         for parts in variants[1:]:
             assert np.concatenate([getattr(p, name) for p in parts]).tobytes() == ref, name
         assert getattr(shifted, name)[1:].tobytes() == ref, ("shifted", name)
+    assert whole.value.dtype == dtype
+    assert whole.width == code_width(method, K, **opts)
 
 
 def test_normalising_with_whitening_is_row_invariant():

@@ -158,36 +158,30 @@ def product_blocks(X: np.ndarray, M: np.ndarray):
         yield start, stop, block
 
 
-def row_energies(X: np.ndarray) -> np.ndarray:
-    """``‖X[i]‖²`` per row, summed left to right in float64, returned in ``X``'s dtype.
+def _per_row(reduce, X: np.ndarray) -> np.ndarray:
+    out = np.empty(X.shape[0], dtype=np.float64)
+    reduce(np.ascontiguousarray(X), out)
+    return out.astype(X.dtype, copy=False)
 
-    Parameters
-    ----------
-    X : ndarray of shape (n_rows, d)
+
+def row_energies(X: np.ndarray) -> np.ndarray:
+    """``‖X[i]‖²`` per row of ``X`` (n_rows, d), summed left to right in float64.
 
     Returns
     -------
-    ndarray of shape (n_rows,)
+    ndarray of shape (n_rows,), ``X``'s dtype
     """
-    out = np.empty(X.shape[0], dtype=np.float64)
-    _energies(np.ascontiguousarray(X), out)
-    return out.astype(X.dtype, copy=False)
+    return _per_row(_energies, X)
 
 
 def row_means(X: np.ndarray) -> np.ndarray:
-    """Mean of each row, summed left to right in float64, returned in ``X``'s dtype.
-
-    Parameters
-    ----------
-    X : ndarray of shape (n_rows, d)
+    """Mean of each row of ``X`` (n_rows, d), summed left to right in float64.
 
     Returns
     -------
-    ndarray of shape (n_rows,)
+    ndarray of shape (n_rows,), ``X``'s dtype
     """
-    out = np.empty(X.shape[0], dtype=np.float64)
-    _means(np.ascontiguousarray(X), out)
-    return out.astype(X.dtype, copy=False)
+    return _per_row(_means, X)
 
 
 def _frobenius(B: np.ndarray) -> float:
