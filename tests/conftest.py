@@ -51,6 +51,19 @@ def demo_small():
     return vibration_records(600, seed=3)
 
 
+@pytest.fixture
+def labelled(tmp_path, demo_small):
+    """A local workspace with 120 labelled records of 2048 samples."""
+    X, y = demo_small
+    url = str(tmp_path / "ws.zarr")
+    from atomline.stages.workspace import Workspace
+
+    ws = Workspace.open(url, create=True)
+    ws.add_records("vib", X[:120], chunk_rows=40)
+    ws.add_labels("vib", y[:120])
+    return url
+
+
 def store_snapshot(ws) -> dict[str, bytes]:
     """Every key and its bytes in a workspace's store, to prove nothing changed."""
     import asyncio

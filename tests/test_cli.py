@@ -21,17 +21,6 @@ from atomline.stages.workspace import Workspace
 
 
 @pytest.fixture
-def labelled(tmp_path, demo_small):
-    """A local workspace with 120 labelled records of 2048 samples."""
-    X, y = demo_small
-    url = str(tmp_path / "ws.zarr")
-    ws = Workspace.open(url, create=True)
-    ws.add_records("vib", X[:120], chunk_rows=40)
-    ws.add_labels("vib", y[:120])
-    return url
-
-
-@pytest.fixture
 def no_server(monkeypatch):
     """Fail the test if a command tries to start or reach a Prefect server."""
     from atomline.flows import _server

@@ -200,13 +200,9 @@ def test_sigkill_matrix_then_rerun_gives_the_reference(stages_ready, tmp_path):
                                                     pool.features_path(dict_id, "vib")))
 
 
-def test_sigkill_of_a_command_leaves_no_temporary_server(tmp_path, demo_small):
+def test_sigkill_of_a_command_leaves_no_temporary_server(labelled):
     """The CLI's temporary Prefect server dies with a command killed by SIGKILL."""
-    X, y = demo_small
-    url = str(tmp_path / "ws.zarr")
-    ws = Workspace.open(url, create=True)
-    ws.add_records("vib", X[:120], chunk_rows=40)
-    ws.add_labels("vib", y[:120])
+    url = labelled
     env = {k: v for k, v in os.environ.items() if k != "PREFECT_API_URL"}  # its own server
     # serve runs until stopped: the kill lands while the command and its server both run.
     cmd = [sys.executable, "-m", "atomline.flows.cli", "serve", url, "vib", "--cron", "0 2 * * *",
