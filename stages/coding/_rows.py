@@ -185,7 +185,8 @@ def row_means(X: np.ndarray) -> np.ndarray:
 
 
 def _frobenius(B: np.ndarray) -> float:
-    return math.sqrt(float(row_energies(B).sum(dtype=np.float64)) if B.size else 0.0)
+    """‖B‖_F of a float64 matrix: one left-to-right sum over all its entries."""
+    return math.sqrt(float(row_energies(B.reshape(1, -1))[0])) if B.size else 0.0
 
 
 _BOUNDS: dict[bytes, float] = {}
