@@ -612,8 +612,31 @@ def _run_serve(args):
         from prefect import serve
 
         print(_describe_serve(info), file=sys.stderr)
-        serve(deployment)  # blocks: runs the flow on schedule until interrupted
+        _until_interrupted(serve, deployment)  # blocks: runs the flow on schedule
     return info
+
+
+def _until_interrupted(serve: Callable[..., Any], *deployments: Any) -> None:
+    """Serve until Ctrl-C, then raise KeyboardInterrupt (so the command exits 130).
+
+    Prefect's ``serve`` catches the KeyboardInterrupt of Ctrl-C and returns normally, so
+    the signal is recorded on its way in: a serve that ended because of it is an interrupt.
+    """
+    import signal
+
+    interrupted = threading.Event()
+
+    def on_interrupt(signum: int, frame: Any) -> None:
+        interrupted.set()
+        signal.default_int_handler(signum, frame)  # raises KeyboardInterrupt, as usual
+
+    previous = signal.signal(signal.SIGINT, on_interrupt)
+    try:
+        serve(*deployments)
+    finally:
+        signal.signal(signal.SIGINT, previous)
+    if interrupted.is_set():
+        raise KeyboardInterrupt
 
 
 def _run_history(args):

@@ -4,6 +4,7 @@ The CLI calls one of these before a flow runs and before a temporary Prefect ser
 starts, so a trivial mistake (a negative ``--atoms``, a patch longer than the records, a
 wrong records name, an unknown coder) is refused in a second with the stage's own
 message. Every rule is the stage's (``atomline.stages.checks``, ``learning.check_learner``,
+``learning.check_learner_options``,
 ``PatchGeometry``, ``coding.code_width``), applied to the workspace's metadata only: no
 chunk is read, nothing is written, and Prefect is not imported (except for ``serve``'s
 cron schedule, which only Prefect's parser can judge).
@@ -21,12 +22,13 @@ from atomline.stages.checks import (check_curve, check_folds, check_record_shape
                                     check_sample_size, check_tolerance, check_workers,
                                     promoted_or_named, resolve_coder)
 from atomline.stages.errors import InputError, problem
-from atomline.stages.learning import TRAIN_CODER_OPTIONS, check_learner, takes_coder
+from atomline.stages.learning import (TRAIN_CODER_OPTIONS, check_learner, check_learner_options,
+                                      takes_coder)
 from atomline.stages.prep import PatchGeometry
 from atomline.stages.workspace import Workspace
 
 __all__ = ["check_runner", "check_train", "check_encode", "check_pool", "check_evaluate",
-           "check_nightly", "check_cron"]
+           "check_nightly", "check_cron", "check_timezone"]
 
 
 def check_runner(workers: int) -> None:
@@ -36,14 +38,15 @@ def check_runner(workers: int) -> None:
 
 def check_train(workspace: str, records: str, *, n_atoms: int, patch_size: Any, stride: Any,
                 method: str, coder: str, coder_options: dict | None, sample_patches: int,
-                **_unchecked: Any) -> PatchGeometry:
+                learner_options: dict | None = None, **_unchecked: Any) -> PatchGeometry:
     """What the train stage refuses before reading a row; returns the patch geometry.
 
-    ``_unchecked`` takes the remaining train parameters (seed, learner options), which
+    ``_unchecked`` takes the remaining train parameters (seed, preprocessing), which
     only the run itself can judge.
     """
     shape = _open(workspace).records(records).shape
     check_learner(method, n_atoms)
+    check_learner_options(method, learner_options or {})
     check_sample_size(sample_patches, n_atoms)
     geometry = PatchGeometry.for_records(shape[1:], _tuple(patch_size), _tuple(stride))
     if takes_coder(method):
@@ -106,7 +109,9 @@ def check_nightly(workspace: str, records: str, *, retrain: str, tolerance: floa
 
 
 def check_cron(cron: str, timezone: str) -> None:
-    """A schedule Prefect can serve (its own parser judges the expression)."""
+    """A schedule Prefect can serve: a known IANA time zone, and an expression Prefect's
+    own parser accepts."""
+    check_timezone(timezone)
     from prefect.schedules import Cron
 
     try:
@@ -115,6 +120,20 @@ def check_cron(cron: str, timezone: str) -> None:
         raise InputError(problem("--cron/--timezone", "a cron expression of five fields and a time zone "
                                  "name", f"{cron!r} in {timezone!r} ({_first_line(exc)})",
                                  "Use e.g. --cron '0 2 * * *' --timezone UTC.")) from None
+
+
+def check_timezone(timezone: str) -> None:
+    """The zone must be in the IANA database (Prefect's Cron takes any name, and the run
+    then fails inside the server)."""
+    from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+    try:
+        ZoneInfo(timezone)
+    except (ZoneInfoNotFoundError, ValueError):
+        raise InputError(problem("--timezone", "an IANA time zone name like Europe/Berlin or UTC",
+                                 repr(timezone), "Use a name from the IANA time zone database "
+                                 "(`python -c 'import zoneinfo; print(sorted(zoneinfo.available_timezones()))'` "
+                                 "lists them).")) from None
 
 
 def _open(workspace: str) -> Workspace:

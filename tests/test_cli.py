@@ -12,6 +12,7 @@ import os
 import signal
 import subprocess
 import sys
+import time
 
 import numpy as np
 import pytest
@@ -88,6 +89,14 @@ def test_bad_cron_is_refused_before_serving(labelled, capsys, no_server):
     assert error["error"] == "InputError" and "'every night'" in error["message"]
 
 
+def test_unknown_time_zone_is_refused_before_serving(labelled, capsys, no_server):
+    status, out, err = _cli(capsys, "serve", labelled, "vib", "--timezone", "Mars/Base")
+    assert status == 2 and out == ""
+    assert err.startswith("atomline: InputError: --timezone: expected an IANA time zone name like "
+                          "Europe/Berlin or UTC, found 'Mars/Base'.")
+    assert len(err.strip().splitlines()) == 1
+
+
 PATCHES = ["--patch-size", "128", "--stride", "128"]
 
 
@@ -109,12 +118,34 @@ PATCHES = ["--patch-size", "128", "--stride", "128"]
     (["nightly", "{ws}", "vib", *PATCHES, "--curve", "0.5", "1.5"], "learning_curve: expected shares strictly between 0 and 1"),
     (["nightly", "{ws}", "vib", *PATCHES, "--retrain", "never"], "expected a promoted dictionary (retrain='never')"),
     (["serve", "{ws}", "vib", *PATCHES, "--atoms", "0"], "n_atoms: expected a positive integer, found 0"),
+    (["train", "{ws}", "vib", "--learner-option", "n_pases=2"],
+     "options of learner 'online': expected option names among ['batch_size', 'checkpoint_every', "
+     "'coder', 'coder_options', 'dead_share', 'duplicate_cos', 'forget', 'init', "
+     "'n_passes', 'n_sweeps', 'replace_every', 'seed', 'warmup'], found unknown ['n_pases']"),
+    (["nightly", "{ws}", "vib", *PATCHES, "--method", "sgd", "--learner-option", "average_decay=2"],
+     "options of learner 'sgd': expected option names among ['batch_size', 'checkpoint_every', "
+     "'coder', 'coder_options', 'dead_share', 'duplicate_cos', 'init', 'n_passes', 'replace_every', "
+     "'seed', 'step', 'step_decay_batches'], found unknown ['average_decay']"),
 ])
 def test_mistakes_refused_before_any_server_starts(labelled, capsys, no_server, argv, words):
     status, out, err = _cli(capsys, *[a.format(ws=labelled) for a in argv])
     assert status == 2, err
     assert words in err
     assert len(err.strip().splitlines()) == 1 and out == ""
+
+
+def test_train_stage_refuses_a_misspelled_learner_option_before_reading(labelled, monkeypatch):
+    from atomline.stages.errors import InputError
+    from atomline.stages.train import train_dictionary
+
+    def no_reading(*args, **kwargs):
+        raise AssertionError("a chunk was read")
+
+    monkeypatch.setattr(Workspace, "read_chunk", no_reading)
+    with pytest.raises(InputError, match=r"options of learner 'averaged-sgd'.*'average_decay'.*"
+                                         r"found unknown \['stepsize'\]"):
+        train_dictionary(labelled, "vib", n_atoms=8, patch_size=128, stride=128, sample_patches=500,
+                         method="averaged-sgd", learner_options={"stepsize": 0.5})
 
 
 @pytest.fixture
@@ -228,27 +259,31 @@ def test_ctrl_c_during_serve_exits_130_with_one_line(labelled):
     try:
         first = child.stderr.readline()
         assert first.startswith("serving deployment"), first + child.stderr.read()[-3000:]
+        # Prefect's serve loop is running by now; it catches the interrupt itself.
+        time.sleep(3)
         child.send_signal(signal.SIGINT)
         out, err = child.communicate(timeout=120)
     finally:
         child.kill()
     assert child.returncode == 130, err[-3000:]
     assert "Traceback" not in err
-    assert err.strip().splitlines()[-1] == "atomline: interrupted; finished chunks are kept, a rerun resumes"
+    lines = err.strip().splitlines()
+    assert lines[-1] == "atomline: interrupted; finished chunks are kept, a rerun resumes"
+    assert lines.count(lines[-1]) == 1
 
 
 @pytest.mark.slow
 @pytest.mark.usefixtures("prefect_harness")
 def test_error_inside_the_nightly_flow_is_one_message(labelled):
-    """An error only the run can find (a learner option) ends the flow: one message, JSON
-    on stdout, and no traceback from Prefect's flow-run logging."""
+    """An error only the run can find (a learner option's value) ends the flow: one message,
+    JSON on stdout, and no traceback from Prefect's flow-run logging."""
     done = subprocess.run([sys.executable, "-m", "atomline.flows.cli", "nightly", labelled, "vib",
                            "--atoms", "8", "--patch-size", "128", "--stride", "128", "--sample", "500",
-                           "--learner-option", "no_such_option=1", "--json"],
+                           "--learner-option", "forget=5", "--json"],
                           capture_output=True, text=True, timeout=600)
     assert done.returncode == 2, done.stderr[-3000:]
     error = json.loads(done.stdout)
-    assert error["error"] == "InputError" and "no_such_option" in error["message"]
+    assert error["error"] == "InputError" and "forget: expected a factor in (0, 1]" in error["message"]
     assert "Traceback" not in done.stderr and "TypeError" not in done.stderr
 
 

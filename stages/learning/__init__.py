@@ -57,6 +57,8 @@ from .subspaces import subspaces
 __all__ = [
     "learn",
     "check_learner",
+    "check_learner_options",
+    "learner_option_names",
     "takes_coder",
     "TRAIN_CODER_OPTIONS",
     "METHODS",
@@ -99,6 +101,34 @@ def check_learner(method: str, n_atoms: int) -> None:
     if int(n_atoms) < 1:
         raise InputError(problem("n_atoms", "a positive integer", repr(n_atoms),
                                  "Ask for at least one atom."))
+
+
+#: Parameters of every learner that :func:`learn` sets itself, not options of the caller's.
+_WIRED = ("checkpoint", "resume")
+
+
+def learner_option_names(method: str) -> list[str]:
+    """The option names the learner ``method`` takes, sorted.
+
+    Every learner's options are keyword-only parameters, so its signature is the list
+    (as for the coders); ``checkpoint`` and ``resume`` are :func:`learn`'s own.
+    """
+    check_learner(method, 1)
+    params = inspect.signature(METHODS[method]).parameters
+    return sorted(n for n, p in params.items()
+                  if p.kind is inspect.Parameter.KEYWORD_ONLY and n not in _WIRED)
+
+
+def check_learner_options(method: str, options: dict) -> None:
+    """Refuse option names the learner does not take (before any row is read), listing
+    those it does."""
+    known = learner_option_names(method)
+    unknown = sorted(set(options) - set(known))
+    if unknown:
+        raise InputError(problem(f"options of learner {method!r}", f"option names among {known}",
+                                 f"unknown {unknown}",
+                                 "Check the spelling, or choose the learner these options belong "
+                                 "to (--method)."))
 
 
 def takes_coder(method: str) -> bool:
@@ -160,6 +190,7 @@ def learn(
         ``Σ‖x − Wᵀz‖² / Σ‖x‖²`` with the dictionary's coder).
     """
     check_learner(method, n_atoms)
+    check_learner_options(method, options)
     seed = int(options.get("seed", 0))
     if resume is None or isinstance(source, np.ndarray):
         # In memory, the split and the fit are pure functions of the rows and the seed,

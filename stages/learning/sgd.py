@@ -50,9 +50,29 @@ __all__ = ["sgd", "averaged_sgd"]
 
 _STATE_KEYS = ("atoms", "average", "usage", "window", "objective", "batches_seen", "t",
                "n_replaced", "rng")
+#: ``c`` of the iterate averaging; plain sgd keeps the (unused) average too, with this ``c``.
+_AVERAGE_DECAY = 3.0
 
 
-def sgd(source: np.ndarray | Iterable[np.ndarray], n_atoms: int, **options) -> LearnedDictionary:
+def sgd(
+    source: np.ndarray | Iterable[np.ndarray],
+    n_atoms: int,
+    *,
+    coder: str = "omp",
+    coder_options: dict | None = None,
+    batch_size: int = 256,
+    n_passes: int = 1,
+    step: float = 1.0,
+    step_decay_batches: float = 10.0,
+    replace_every: int = 10,
+    dead_share: float = 0.15,
+    duplicate_cos: float = 0.98,
+    seed: int = 0,
+    init: np.ndarray | None = None,
+    checkpoint: Checkpoint | None = None,
+    checkpoint_every: int = 10,
+    resume: dict | None = None,
+) -> LearnedDictionary:
     """Plain projected SGD; options as :func:`averaged_sgd` without ``average_decay``.
 
     Returns
@@ -60,11 +80,33 @@ def sgd(source: np.ndarray | Iterable[np.ndarray], n_atoms: int, **options) -> L
     LearnedDictionary
         ``method="sgd"``, atoms of shape (n_atoms, d).
     """
-    return _run(source, n_atoms, method="sgd", **options)
+    return _run(source, n_atoms, method="sgd", coder=coder, coder_options=coder_options,
+                batch_size=batch_size, n_passes=n_passes, step=step,
+                step_decay_batches=step_decay_batches, average_decay=_AVERAGE_DECAY,
+                replace_every=replace_every, dead_share=dead_share, duplicate_cos=duplicate_cos,
+                seed=seed, init=init, checkpoint=checkpoint, checkpoint_every=checkpoint_every,
+                resume=resume)
 
 
 def averaged_sgd(
-    source: np.ndarray | Iterable[np.ndarray], n_atoms: int, **options
+    source: np.ndarray | Iterable[np.ndarray],
+    n_atoms: int,
+    *,
+    coder: str = "omp",
+    coder_options: dict | None = None,
+    batch_size: int = 256,
+    n_passes: int = 1,
+    step: float = 1.0,
+    step_decay_batches: float = 10.0,
+    average_decay: float = _AVERAGE_DECAY,
+    replace_every: int = 10,
+    dead_share: float = 0.15,
+    duplicate_cos: float = 0.98,
+    seed: int = 0,
+    init: np.ndarray | None = None,
+    checkpoint: Checkpoint | None = None,
+    checkpoint_every: int = 10,
+    resume: dict | None = None,
 ) -> LearnedDictionary:
     """Projected SGD returning the weighted average of its iterates.
 
@@ -74,20 +116,28 @@ def averaged_sgd(
         Training rows, already preprocessed.
     n_atoms : int
         ``k``.
-    **options
-        ``coder`` (str, "omp"), ``coder_options`` (dict), ``batch_size`` (256),
-        ``n_passes`` (1), ``step`` (1.0, in units of 1/L), ``step_decay_batches``
-        (batches, 10), ``average_decay`` (3.0, averaged only), ``replace_every``
-        (10), ``dead_share`` (0.15), ``duplicate_cos`` (0.98), ``seed`` (0),
-        ``init`` ((n_atoms, d) array), ``checkpoint``, ``checkpoint_every`` (10),
-        ``resume``.
+    coder, coder_options
+        The coder of the mini-batches (default OMP, ``n_nonzero`` 5).
+    batch_size, n_passes
+        Rows per mini-batch; passes over an in-memory source.
+    step, step_decay_batches
+        ``step`` in units of 1/L, and ``τ`` in batches (see the module docstring).
+    average_decay
+        ``c`` of the iterate averaging.
+    replace_every, dead_share, duplicate_cos, seed, init, checkpoint, checkpoint_every, resume
+        As in ``online``.
 
     Returns
     -------
     LearnedDictionary
         ``method="averaged-sgd"``, atoms of shape (n_atoms, d).
     """
-    return _run(source, n_atoms, method="averaged-sgd", **options)
+    return _run(source, n_atoms, method="averaged-sgd", coder=coder, coder_options=coder_options,
+                batch_size=batch_size, n_passes=n_passes, step=step,
+                step_decay_batches=step_decay_batches, average_decay=average_decay,
+                replace_every=replace_every, dead_share=dead_share, duplicate_cos=duplicate_cos,
+                seed=seed, init=init, checkpoint=checkpoint, checkpoint_every=checkpoint_every,
+                resume=resume)
 
 
 def _run(
@@ -95,21 +145,21 @@ def _run(
     n_atoms: int,
     *,
     method: str,
-    coder: str = "omp",
-    coder_options: dict | None = None,
-    batch_size: int = 256,
-    n_passes: int = 1,
-    step: float = 1.0,
-    step_decay_batches: float = 10.0,
-    average_decay: float = 3.0,
-    replace_every: int = 10,
-    dead_share: float = 0.15,
-    duplicate_cos: float = 0.98,
-    seed: int = 0,
-    init: np.ndarray | None = None,
-    checkpoint: Checkpoint | None = None,
-    checkpoint_every: int = 10,
-    resume: dict | None = None,
+    coder: str,
+    coder_options: dict | None,
+    batch_size: int,
+    n_passes: int,
+    step: float,
+    step_decay_batches: float,
+    average_decay: float,
+    replace_every: int,
+    dead_share: float,
+    duplicate_cos: float,
+    seed: int,
+    init: np.ndarray | None,
+    checkpoint: Checkpoint | None,
+    checkpoint_every: int,
+    resume: dict | None,
 ) -> LearnedDictionary:
     averaged = method == "averaged-sgd"
     coder_options = default_coder_options(coder, coder_options)
