@@ -22,8 +22,8 @@ from atomline.stages.checks import (check_curve, check_folds, check_record_shape
                                     check_sample_size, check_tolerance, check_workers,
                                     promoted_or_named, resolve_coder)
 from atomline.stages.errors import InputError, problem
-from atomline.stages.learning import (TRAIN_CODER_OPTIONS, check_learner, check_learner_options,
-                                      takes_coder)
+from atomline.stages.learning import (TRAIN_CODER_OPTIONS, TRAIN_OWN_OPTIONS, check_learner,
+                                      check_learner_options, takes_coder)
 from atomline.stages.prep import PatchGeometry
 from atomline.stages.workspace import Workspace
 
@@ -46,7 +46,7 @@ def check_train(workspace: str, records: str, *, n_atoms: int, patch_size: Any, 
     """
     shape = _open(workspace).records(records).shape
     check_learner(method, n_atoms)
-    check_learner_options(method, learner_options or {})
+    check_learner_options(method, learner_options or {}, TRAIN_OWN_OPTIONS)
     check_sample_size(sample_patches, n_atoms)
     geometry = PatchGeometry.for_records(shape[1:], _tuple(patch_size), _tuple(stride))
     if takes_coder(method):

@@ -18,7 +18,8 @@ from prefect import task
 from prefect.cache_policies import NO_CACHE
 
 from .checks import check_sample_size
-from .learning import TRAIN_CODER_OPTIONS, check_learner_options, learn, takes_coder
+from .learning import (TRAIN_CODER_OPTIONS, TRAIN_OWN_OPTIONS, check_learner_options, learn,
+                       takes_coder)
 from .prep import Normaliser, PatchGeometry
 from .workspace import Workspace, fingerprint_params, iter_row_chunks
 
@@ -91,7 +92,7 @@ def train_dictionary(
     coder_kw = {"coder": coder, "coder_options": coder_options} if takes_coder(method) else {}
     normaliser = Normaliser(**(preprocessing or {}))
     check_sample_size(sample_patches, n_atoms)
-    check_learner_options(method, learner_options)
+    check_learner_options(method, learner_options, TRAIN_OWN_OPTIONS)
     recipe = {
         "records_fingerprint": ws.records_fingerprint(records),
         "geometry": geometry.to_attrs(),

@@ -126,6 +126,8 @@ PATCHES = ["--patch-size", "128", "--stride", "128"]
      "options of learner 'sgd': expected option names among ['batch_size', 'checkpoint_every', "
      "'coder', 'coder_options', 'dead_share', 'duplicate_cos', 'init', 'n_passes', 'replace_every', "
      "'seed', 'step', 'step_decay_batches'], found unknown ['average_decay']"),
+    (["train", "{ws}", "vib", "--learner-option", "seed=3"],
+     "found ['seed'] among the learner options. Give them as their own options (e.g. --seed"),
 ])
 def test_mistakes_refused_before_any_server_starts(labelled, capsys, no_server, argv, words):
     status, out, err = _cli(capsys, *[a.format(ws=labelled) for a in argv])

@@ -61,6 +61,7 @@ __all__ = [
     "learner_option_names",
     "takes_coder",
     "TRAIN_CODER_OPTIONS",
+    "TRAIN_OWN_OPTIONS",
     "METHODS",
     "LearnedDictionary",
     "reservoir_sample",
@@ -91,6 +92,8 @@ _OWN = "learn."
 
 #: Options of the coder inside a learner when the caller gives none (the train stage's default).
 TRAIN_CODER_OPTIONS = {"n_nonzero": 5}
+#: Learner options the train stage sets from its own arguments, so not taken as learner options.
+TRAIN_OWN_OPTIONS = ("seed", "coder", "coder_options")
 
 
 def check_learner(method: str, n_atoms: int) -> None:
@@ -119,9 +122,17 @@ def learner_option_names(method: str) -> list[str]:
                   if p.kind is inspect.Parameter.KEYWORD_ONLY and n not in _WIRED)
 
 
-def check_learner_options(method: str, options: dict) -> None:
+def check_learner_options(method: str, options: dict, own: tuple[str, ...] = ()) -> None:
     """Refuse option names the learner does not take (before any row is read), listing
-    those it does."""
+    those it does; and those in ``own``, which the caller sets from its own arguments
+    (the train stage: :data:`TRAIN_OWN_OPTIONS`)."""
+    given_twice = sorted(set(options) & set(own))
+    if given_twice:
+        raise InputError(problem(f"options of learner {method!r}", "options other than the "
+                                 f"command's own arguments {sorted(own)}",
+                                 f"{given_twice} among the learner options",
+                                 "Give them as their own options (e.g. --seed, --coder, "
+                                 "--coder-option), not as --learner-option."))
     known = learner_option_names(method)
     unknown = sorted(set(options) - set(known))
     if unknown:
