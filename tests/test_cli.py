@@ -254,16 +254,25 @@ def test_interrupt_exits_130_with_one_line(labelled, capsys, monkeypatch):
 
 @pytest.mark.slow
 @pytest.mark.usefixtures("prefect_harness")
-def test_ctrl_c_during_serve_exits_130_with_one_line(labelled):
+@pytest.mark.parametrize("own_server", [False, True], ids=["configured-api", "own-server-group"])
+def test_ctrl_c_during_serve_exits_130_with_one_line(labelled, own_server):
+    """Ctrl-C to the process (configured Prefect API) or to its whole process group (the
+    command's own temporary server, as a terminal sends it), while serve is serving."""
+    env = dict(os.environ)
+    if own_server:
+        env.pop("PREFECT_API_URL", None)
     child = subprocess.Popen([sys.executable, "-m", "atomline.flows.cli", "serve", labelled, "vib",
-                              *PATCHES, "--atoms", "8"],
+                              *PATCHES, "--atoms", "8"], env=env, start_new_session=own_server,
                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     try:
-        first = child.stderr.readline()
-        assert first.startswith("serving deployment"), first + child.stderr.read()[-3000:]
+        before = [child.stderr.readline() for _ in range(2 if own_server else 1)]
+        assert before[-1].startswith("serving deployment"), "".join(before) + child.stderr.read()[-3000:]
         # Prefect's serve loop is running by now; it catches the interrupt itself.
         time.sleep(3)
-        child.send_signal(signal.SIGINT)
+        if own_server:
+            os.killpg(child.pid, signal.SIGINT)
+        else:
+            child.send_signal(signal.SIGINT)
         out, err = child.communicate(timeout=120)
     finally:
         child.kill()
