@@ -22,6 +22,7 @@ bytes stored under its own name, never a pointer to other bytes.
 from __future__ import annotations
 
 import os
+import re
 from pathlib import Path
 from typing import Any
 
@@ -159,13 +160,23 @@ def require_attrs(attrs: dict, schema: dict[str, type | tuple[type, ...]], where
 
 _MISSING = object()
 
+#: zarr's local store writes a key to ``<key>.<uuid4 hex>.partial`` and then renames it.
+_UNFINISHED = re.compile(r"\.[0-9a-f]{32}\.partial$")
+
+
+def unfinished_write(key: str) -> bool:
+    """Whether ``key`` names the temporary file of a write that never finished."""
+    return _UNFINISHED.search(key) is not None
+
 
 class ContainedLocalStore(LocalStore):
     """Zarr's local store, refusing keys that resolve outside its root or are links.
 
     Every read (``get``, ``get_partial_values``, ``exists``, ``getsize``) and write
     (``set``, ``set_if_not_exists``, ``delete``, ``delete_dir``) checks the key first
-    (:meth:`contained`); listing is Zarr's own (it does not descend into linked folders).
+    (:meth:`contained`); listing is Zarr's own (it does not descend into linked folders),
+    except that it hides the temporary files of unfinished writes (:func:`unfinished_write`),
+    which a writer killed mid-write leaves behind and readers would list as unknown members.
 
     Raises
     ------
@@ -231,6 +242,34 @@ class ContainedLocalStore(LocalStore):
     async def delete_dir(self, prefix: str) -> None:
         self.contained(prefix.rstrip("/"))
         await super().delete_dir(prefix)
+
+    async def list(self):
+        async for key in super().list():
+            if not unfinished_write(key):
+                yield key
+
+    async def list_prefix(self, prefix: str):
+        async for key in super().list_prefix(prefix):
+            if not unfinished_write(key):
+                yield key
+
+    async def list_dir(self, prefix: str):
+        async for key in super().list_dir(prefix):
+            if not unfinished_write(key):
+                yield key
+
+    def sweep_unfinished_writes(self, prefix: str) -> int:
+        """Delete the temporary files of unfinished writes under ``prefix`` (a folder key,
+        ``""`` for the root's own files only); call it only while holding the lease that
+        makes this process the one writer there. Returns how many were removed."""
+        base = self.contained(prefix) if prefix else Path(self.root)
+        found = base.glob("**/*.partial" if prefix else "*.partial")
+        gone = 0
+        for path in found:
+            if unfinished_write(path.name) and path.is_file() and not path.is_symlink():
+                path.unlink(missing_ok=True)
+                gone += 1
+        return gone
 
     def get_sync(self, key, *, prototype=None, byte_range=None):
         self.contained(key)

@@ -1345,9 +1345,17 @@ class Workspace:
         """
         if not (isinstance(ttl, (int, float)) and ttl > 0):
             raise InputError(problem("lease ttl", "a positive number of seconds", repr(ttl), "Pass ttl > 0."))
-        return _leases.acquire(self._lease_store(), self._lease_name(output),
-                               run=run or f"pid {os.getpid()}", ttl=float(ttl),
-                               break_existing=break_existing, registry=_HELD_LEASES)
+        lease = _leases.acquire(self._lease_store(), self._lease_name(output),
+                                run=run or f"pid {os.getpid()}", ttl=float(ttl),
+                                break_existing=break_existing, registry=_HELD_LEASES)
+        store = self.root.store
+        if isinstance(store, ContainedLocalStore):
+            # The one writer now: what a killed writer left half-written here is abandoned.
+            # ("promoted" is the root's own metadata: sweep only the root's files.)
+            prefix = "" if output == "promoted" else f"{self.root.store_path.path}/{output}".strip("/")
+            if prefix == "" or os.path.isdir(store.root / prefix):
+                store.sweep_unfinished_writes(prefix)
+        return lease
 
     def lease_holder(self, output: str) -> dict | None:
         """Who holds the lease of ``output`` (host, pid, run, started, heartbeat, ttl), or None."""
