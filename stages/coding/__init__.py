@@ -82,7 +82,6 @@ fixed block shape so that a row's result never depends on the other rows of its 
 
 from __future__ import annotations
 
-import inspect
 from typing import Any, Callable
 
 import numpy as np
@@ -93,7 +92,8 @@ from ._numba_cache import use_user_cache_dir
 # Before any kernel is decorated: the decorator picks the cache location.
 use_user_cache_dir()
 
-from ._common import SparseCodes, check_problem, gram  # noqa: E402
+from ._common import (SparseCodes, check_problem, gram, keyword_options,  # noqa: E402
+                      refuse_unknown_options)
 from .block_omp import block_omp, block_omp_width
 from .cosamp import cosamp, cosamp_width
 from .fista import fista
@@ -164,18 +164,9 @@ def _bad_options(method: str, exc: TypeError) -> InputError:
 
 
 def _check_option_names(method: str, options: dict) -> None:
-    """Refuse option names the coder does not take, listing those it does.
-
-    Every coder's options are keyword-only parameters, so its signature is the list.
-    """
-    params = inspect.signature(METHODS[method]).parameters
-    known = sorted(n for n, p in params.items() if p.kind is inspect.Parameter.KEYWORD_ONLY)
-    unknown = sorted(set(options) - set(known))
-    if unknown:
-        raise InputError(problem(f"options of coder {method!r}", f"option names among {known}",
-                                 f"unknown {unknown}",
-                                 "Check the spelling, or choose the coder these options belong "
-                                 "to (--coder)."))
+    """Refuse option names the coder does not take, listing those it does (every coder's
+    options are keyword-only parameters, so its signature is the list)."""
+    refuse_unknown_options(f"coder {method!r}", options, keyword_options(METHODS[method]), "--coder")
 
 
 def code(X: np.ndarray, atoms: np.ndarray, method: str = "omp", **options: Any) -> SparseCodes:

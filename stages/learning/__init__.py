@@ -43,6 +43,7 @@ from typing import Any, Callable, Iterable
 import numpy as np
 
 from ..errors import InputError, problem
+from ..coding._common import keyword_options, refuse_unknown_options
 from ..prep import Normaliser
 from ._common import LearnedDictionary, as_rows, atom_usage, coded, residual_energy
 from .batch import batch, batch_statistics, batch_update, combine_statistics
@@ -117,9 +118,7 @@ def learner_option_names(method: str) -> list[str]:
     (as for the coders); ``checkpoint`` and ``resume`` are :func:`learn`'s own.
     """
     check_learner(method, 1)
-    params = inspect.signature(METHODS[method]).parameters
-    return sorted(n for n, p in params.items()
-                  if p.kind is inspect.Parameter.KEYWORD_ONLY and n not in _WIRED)
+    return keyword_options(METHODS[method], leave_out=_WIRED)
 
 
 def check_learner_options(method: str, options: dict, own: tuple[str, ...] = ()) -> None:
@@ -133,13 +132,8 @@ def check_learner_options(method: str, options: dict, own: tuple[str, ...] = ())
                                  f"{given_twice} among the learner options",
                                  "Give them as their own options (e.g. --seed, --coder, "
                                  "--coder-option), not as --learner-option."))
-    known = learner_option_names(method)
-    unknown = sorted(set(options) - set(known))
-    if unknown:
-        raise InputError(problem(f"options of learner {method!r}", f"option names among {known}",
-                                 f"unknown {unknown}",
-                                 "Check the spelling, or choose the learner these options belong "
-                                 "to (--method)."))
+    refuse_unknown_options(f"learner {method!r}", options, learner_option_names(method),
+                           "--method")
 
 
 def takes_coder(method: str) -> bool:
