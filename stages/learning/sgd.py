@@ -80,12 +80,8 @@ def sgd(
     LearnedDictionary
         ``method="sgd"``, atoms of shape (n_atoms, d).
     """
-    return _run(source, n_atoms, method="sgd", coder=coder, coder_options=coder_options,
-                batch_size=batch_size, n_passes=n_passes, step=step,
-                step_decay_batches=step_decay_batches, average_decay=_AVERAGE_DECAY,
-                replace_every=replace_every, dead_share=dead_share, duplicate_cos=duplicate_cos,
-                seed=seed, init=init, checkpoint=checkpoint, checkpoint_every=checkpoint_every,
-                resume=resume)
+    # locals() here is exactly the parameters: the signature is the options' one declaration.
+    return _run(method="sgd", average_decay=_AVERAGE_DECAY, **locals())
 
 
 def averaged_sgd(
@@ -132,18 +128,13 @@ def averaged_sgd(
     LearnedDictionary
         ``method="averaged-sgd"``, atoms of shape (n_atoms, d).
     """
-    return _run(source, n_atoms, method="averaged-sgd", coder=coder, coder_options=coder_options,
-                batch_size=batch_size, n_passes=n_passes, step=step,
-                step_decay_batches=step_decay_batches, average_decay=average_decay,
-                replace_every=replace_every, dead_share=dead_share, duplicate_cos=duplicate_cos,
-                seed=seed, init=init, checkpoint=checkpoint, checkpoint_every=checkpoint_every,
-                resume=resume)
+    return _run(method="averaged-sgd", **locals())  # the parameters, as in sgd
 
 
 def _run(
+    *,
     source: np.ndarray | Iterable[np.ndarray],
     n_atoms: int,
-    *,
     method: str,
     coder: str,
     coder_options: dict | None,
