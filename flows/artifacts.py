@@ -23,7 +23,7 @@ from prefect.artifacts import (
     update_progress_artifact,
 )
 
-from atomline.stages.scoring import SCORES
+from atomline.stages.kernels.scoring import SCORES
 from atomline.stages.workspace import Workspace
 
 __all__ = ["artifact_key", "score_table", "summary_markdown", "publish_evaluation", "ChunkProgress"]

@@ -22,9 +22,9 @@ from atomline.stages.checks import (check_curve, check_folds, check_record_shape
                                     check_sample_size, check_tolerance, check_workers,
                                     promoted_or_named, resolve_coder)
 from atomline.stages.errors import InputError, problem
-from atomline.stages.learning import (TRAIN_CODER_OPTIONS, TRAIN_OWN_OPTIONS, check_learner,
+from atomline.stages.kernels.learning import (TRAIN_CODER_OPTIONS, TRAIN_OWN_OPTIONS, check_learner,
                                       check_learner_options, takes_coder)
-from atomline.stages.prep import PatchGeometry
+from atomline.stages.kernels.prep import PatchGeometry
 from atomline.stages.workspace import Workspace
 
 __all__ = ["check_runner", "check_train", "check_encode", "check_pool", "check_evaluate",
@@ -143,7 +143,7 @@ def _open(workspace: str) -> Workspace:
 def _check_coder(coder: str, n_atoms: int, options: dict) -> None:
     # A learned encoder is named by option and loaded by the stage; nothing to size here.
     if coder != "learned":
-        from atomline.stages.coding import code_width
+        from atomline.stages.kernels.coding import code_width
 
         code_width(coder, n_atoms, **options)
 

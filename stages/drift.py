@@ -17,9 +17,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from .coding import code
+from .kernels.coding import code
 from .errors import InputError, problem
-from .prep import Normaliser, PatchGeometry
+from .kernels.prep import Normaliser, PatchGeometry
 from .workspace import Workspace, iter_row_chunks
 
 __all__ = ["measure_fit", "compare_drift", "detect_drift"]

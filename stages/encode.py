@@ -23,9 +23,9 @@ from prefect.cache_policies import NO_CACHE
 from threadpoolctl import threadpool_limits
 
 from .checks import check_record_shape, resolve_coder
-from .coding import code, code_outputs, code_width, gram
+from .kernels.coding import code, code_outputs, code_width, gram
 from .errors import BadChunk, FingerprintMismatch, InputError, problem, retry_if_transient
-from .prep import Normaliser, PatchGeometry
+from .kernels.prep import Normaliser, PatchGeometry
 from .workspace import Workspace, check_bad_chunk_choice, fingerprint_params, iter_row_chunks
 
 __all__ = ["prepare_encode", "encode_chunks", "encode_task", "codes_path"]
@@ -211,7 +211,7 @@ def _resolve_options(ws: Workspace, dict_id: str, coder: str, options: dict) -> 
     """Options as the coder takes them: a learned encoder is named, then loaded."""
     if coder != "learned":
         return options
-    from .coding import LearnedEncoder
+    from .kernels.coding import LearnedEncoder
 
     name = options.get("encoder")
     if not isinstance(name, str):

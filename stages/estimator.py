@@ -27,11 +27,11 @@ import numpy as np
 from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.utils.validation import check_is_fitted, validate_data
 
-from .coding import code, gram
+from .kernels.coding import code, gram
 from .errors import InputError, problem
-from .learning import learn
+from .kernels.learning import learn
 from .pool import pool_codes, region_of_patches
-from .prep import Normaliser, PatchGeometry
+from .kernels.prep import Normaliser, PatchGeometry
 
 __all__ = ["SparseCodePooler"]
 
@@ -51,12 +51,12 @@ class SparseCodePooler(TransformerMixin, BaseEstimator):
     record_shape : tuple of int, optional
         Shape of one record; ``(n_features_in_,)`` when omitted.
     patch_size, stride : int or tuple of int, optional
-        Patch geometry (:class:`~atomline.stages.prep.PatchGeometry`); the whole record
+        Patch geometry (:class:`~atomline.stages.kernels.prep.PatchGeometry`); the whole record
         is one patch when ``patch_size`` is omitted.
     method : str
-        Dictionary learner (``atomline.stages.learning.METHODS``).
+        Dictionary learner (``atomline.stages.kernels.learning.METHODS``).
     coder : str
-        Sparse coder (``atomline.stages.coding.METHODS``), used in learning and transform.
+        Sparse coder (``atomline.stages.kernels.coding.METHODS``), used in learning and transform.
     n_nonzero : int
         Nonzeros per patch for greedy coders (capped by ``k`` and the patch length).
     learner_options : dict, optional

@@ -58,13 +58,13 @@ from sklearn.preprocessing import StandardScaler
 from sklearn.svm import LinearSVC
 from threadpoolctl import threadpool_limits
 
-from .coding import code, gram
+from .kernels.coding import code, gram
 from .encode import codes_path
 from .checks import check_curve, check_folds, check_tolerance
 from .errors import BadChunk, InputError, problem
 from .pool import features_path, pool_codes, region_of_patches
-from .prep import Normaliser, PatchGeometry
-from .scoring import confusion, paired_bootstrap, scores_from_confusion
+from .kernels.prep import Normaliser, PatchGeometry
+from .kernels.scoring import confusion, paired_bootstrap, scores_from_confusion
 from .workspace import Workspace, check_bad_chunk_choice, fingerprint_params, iter_row_chunks
 
 __all__ = ["evaluate_features", "evaluate_task", "evaluation_key", "cross_predict", "make_classifier",

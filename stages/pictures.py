@@ -25,7 +25,7 @@ from matplotlib.figure import Figure  # noqa: E402
 
 from .encode import codes_path  # noqa: E402
 from .errors import InputError, problem  # noqa: E402
-from .prep import PatchGeometry  # noqa: E402
+from .kernels.prep import PatchGeometry  # noqa: E402
 from .workspace import Workspace, iter_row_chunks  # noqa: E402
 
 __all__ = ["SIZE", "atoms_png", "usage_png", "history_png", "confusion_png", "curve_png",

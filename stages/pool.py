@@ -1,6 +1,6 @@
 """The pool stage: one fixed-length feature vector per record from its patches' codes.
 
-The patch grid of a record (see :class:`~atomline.stages.prep.PatchGeometry`) is cut into
+The patch grid of a record (see :class:`~atomline.stages.kernels.prep.PatchGeometry`) is cut into
 ``regions`` equal parts — segments of a 1-D record, a grid of rectangles of an image — and
 within each region every atom's coefficients are reduced to one number:
 
@@ -27,7 +27,7 @@ from prefect.cache_policies import NO_CACHE
 from .checks import check_regions
 from .errors import BadChunk, FingerprintMismatch, InputError, problem, retry_if_transient
 from .encode import codes_path
-from .prep import PatchGeometry
+from .kernels.prep import PatchGeometry
 from .workspace import Workspace, check_bad_chunk_choice, fingerprint_params
 
 __all__ = ["pool_codes", "region_of_patches", "prepare_pool", "pool_chunks", "pool_task",

@@ -18,9 +18,9 @@ from prefect import task
 from prefect.cache_policies import NO_CACHE
 
 from .checks import check_sample_size
-from .learning import (TRAIN_CODER_OPTIONS, TRAIN_OWN_OPTIONS, check_learner_options, learn,
+from .kernels.learning import (TRAIN_CODER_OPTIONS, TRAIN_OWN_OPTIONS, check_learner_options, learn,
                        takes_coder)
-from .prep import Normaliser, PatchGeometry
+from .kernels.prep import Normaliser, PatchGeometry
 from .workspace import Workspace, fingerprint_params, iter_row_chunks
 
 __all__ = ["train_dictionary", "train_task", "train_encoder", "train_encoder_task"]
@@ -55,10 +55,10 @@ def train_dictionary(
     n_atoms : int
         ``k``.
     patch_size, stride : int or tuple, optional
-        Patch geometry (see :class:`~atomline.stages.prep.PatchGeometry`); the whole
+        Patch geometry (see :class:`~atomline.stages.kernels.prep.PatchGeometry`); the whole
         record is one patch when ``patch_size`` is ``None``.
     method : str
-        Learner name (``atomline.stages.learning.METHODS``).
+        Learner name (``atomline.stages.kernels.learning.METHODS``).
     coder : str
         Coder used inside the learner and, by default, by the encode stage.
     coder_options : dict, optional
@@ -66,7 +66,7 @@ def train_dictionary(
     learner_options : dict, optional
         Extra options of the learner.
     preprocessing : dict, optional
-        Fields of :class:`~atomline.stages.prep.Normaliser`.
+        Fields of :class:`~atomline.stages.kernels.prep.Normaliser`.
     sample_patches : int
         Patches in the training sample.
     seed : int
@@ -223,14 +223,14 @@ def train_encoder(
     sample_patches : int
     seed : int
     fit_options : dict, optional
-        Training options of :func:`~atomline.stages.coding.fit_learned_encoder`.
+        Training options of :func:`~atomline.stages.kernels.coding.fit_learned_encoder`.
 
     Returns
     -------
     dict
         ``{"dict_id", "name", "fingerprint", "target", "n_layers", "info"}``
     """
-    from .coding import fit_learned_encoder
+    from .kernels.coding import fit_learned_encoder
 
     ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
     arr = ws.records(records)

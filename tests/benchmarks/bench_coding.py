@@ -13,7 +13,7 @@ loop makes fair. Rows are synthetic: 8 random atoms per row plus Gaussian noise
 (invented for timing only).
 
 The floor is BLAS's ``X @ atoms.T`` on one thread; the coders form that product with their
-own fixed-order loops (``stages/coding/_rows.py``, row-invariant on every CPU), whose ratio
+own fixed-order loops (``stages/kernels/coding/_rows.py``, row-invariant on every CPU), whose ratio
 to the floor is the ``fixed-order X·Wᵀ`` line: part of every coder's ratio.
 
 Quality column: for lasso coders, the mean relative excess of the objective over the
@@ -33,8 +33,8 @@ import numpy as np
 from sklearn.decomposition import sparse_encode
 from threadpoolctl import threadpool_limits
 
-from atomline.stages.coding import code, fit_learned_encoder, lambda_for_sparsity
-from atomline.stages.coding._rows import product
+from atomline.stages.kernels.coding import code, fit_learned_encoder, lambda_for_sparsity
+from atomline.stages.kernels.coding._rows import product
 
 
 def _timed(fn):

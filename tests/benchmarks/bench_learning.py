@@ -65,7 +65,7 @@ def recovered(W_true: np.ndarray, W: np.ndarray) -> float:
 
 
 def l0_objective(X: np.ndarray, W: np.ndarray) -> float:
-    from atomline.stages.coding import code
+    from atomline.stages.kernels.coding import code
 
     Z = code(X, W, "omp", n_nonzero=S).dense()
     R = X - Z @ W
@@ -101,7 +101,7 @@ def first_reaching(snaps: list[tuple[float, float, np.ndarray]], target: float,
 def compare(n_rows: int, sklearn_passes: int) -> list[tuple[str, str, str, str]]:
     from sklearn.decomposition import MiniBatchDictionaryLearning, sparse_encode
 
-    from atomline.stages.learning import learn
+    from atomline.stages.kernels.learning import learn
 
     W_true, X = planted(n_rows)
     probe = X[np.random.default_rng(9).choice(n_rows, 4000, replace=False)]
@@ -168,7 +168,7 @@ def rss_worker(path: str, mode: str) -> None:
     """Train from a Zarr array streamed chunk by chunk; print peak RSS in MiB and rows."""
     import zarr
 
-    from atomline.stages.learning import learn, reservoir_sample
+    from atomline.stages.kernels.learning import learn, reservoir_sample
 
     arr = zarr.open_array(store=path, mode="r")
     chunk = arr.chunks[0]

@@ -85,8 +85,8 @@ def _bare_worker(args):
     barrier, start, n, atoms, prep_attrs, prep_arrays, blas, chunk, out = args
     from threadpoolctl import threadpool_limits
 
-    from atomline.stages.coding import code, gram
-    from atomline.stages.prep import Normaliser
+    from atomline.stages.kernels.coding import code, gram
+    from atomline.stages.kernels.prep import Normaliser
 
     normaliser = Normaliser.from_stored(prep_attrs, prep_arrays)
     # Block by block, as fill_records wrote them (the same rows when start is a multiple
@@ -200,8 +200,8 @@ def thread_scaling_of_parts(url: str, name: str, dict_id: str, n_chunks: int = 2
     from threadpoolctl import threadpool_limits
 
     from atomline.stages import encode
-    from atomline.stages.coding import code, gram
-    from atomline.stages.prep import Normaliser, PatchGeometry
+    from atomline.stages.kernels.coding import code, gram
+    from atomline.stages.kernels.prep import Normaliser, PatchGeometry
     from atomline.stages.workspace import Workspace
 
     ws = Workspace.open(url)
