@@ -30,7 +30,7 @@ from atomline.stages.errors import InputError, problem
 from atomline.stages.encode import codes_path, encode_task, prepare_encode
 from atomline.stages.evaluate import (BASELINES, DEFAULT_CURVE, compare_evaluations, evaluate_task,
                                       gate_decision)
-from atomline.stages.pictures import render_report
+from atomline.stages.report import render_report
 from atomline.stages.kernels.scoring import SCORES
 from atomline.stages.pool import features_path, pool_task, prepare_pool
 from atomline.stages.train import train_task

@@ -7,7 +7,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from atomline.stages import encode, evaluate, pictures, pool, train
+from atomline.stages import encode, evaluate, pool, train
+from atomline.stages import report as pictures
 from atomline.stages.errors import FingerprintMismatch
 from atomline.stages.workspace import Workspace
 

@@ -8,7 +8,8 @@ import numpy as np
 import pytest
 from matplotlib.image import imread
 
-from atomline.stages import evaluate, pictures
+from atomline.stages import evaluate
+from atomline.stages import report as pictures
 from atomline.stages.drift import compare_drift, detect_drift, measure_fit
 from atomline.stages.errors import InputError
 from atomline.stages.kernels.prep import PatchGeometry
