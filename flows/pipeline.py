@@ -15,6 +15,7 @@ configured starts a temporary local one)::
 
 from __future__ import annotations
 
+import dataclasses
 import time
 
 from prefect import flow, get_run_logger, task
@@ -32,6 +33,8 @@ from atomline.stages.evaluate import (BASELINES, DEFAULT_CURVE, compare_evaluati
                                       gate_decision)
 from atomline.stages.report import render_report
 from atomline.stages.kernels.scoring import SCORES
+from atomline.stages.options import (DriftOptions, EncodeOptions, EvaluateOptions, PoolOptions,
+                                     TrainOptions)
 from atomline.stages.pool import features_path, pool_task, prepare_pool
 from atomline.stages.train import train_task
 from atomline.stages.workspace import Workspace, fingerprint_params
@@ -96,11 +99,10 @@ def train_flow(workspace: str, records: str, n_atoms: int = 128, patch_size: int
                preprocessing: dict | None = None, sample_patches: int = 20_000, seed: int = 0,
                break_lease: bool = False) -> dict:
     """Learn a dictionary from a sample of ``data/<records>`` (see ``train_dictionary``)."""
-    manifest = train_task(workspace, records, n_atoms=n_atoms, patch_size=_tuple(patch_size),
-                          stride=_tuple(stride), method=method, coder=coder,
-                          coder_options=coder_options, learner_options=learner_options,
-                          preprocessing=preprocessing, sample_patches=sample_patches, seed=seed,
-                          run=_run_name(), break_lease=break_lease)
+    options = TrainOptions(n_atoms=n_atoms, patch_size=patch_size, stride=stride, method=method,
+                           coder=coder, coder_options=coder_options, learner_options=learner_options,
+                           preprocessing=preprocessing, sample_patches=sample_patches, seed=seed)
+    manifest = train_task(workspace, records, options, run=_run_name(), break_lease=break_lease)
     get_run_logger().info("dictionary %s (%s, reused=%s)", manifest["dict_id"], method, manifest["reused"])
     return manifest
 
@@ -121,15 +123,15 @@ def encode_flow(workspace: str, records: str, dict_id: str | None = None, coder:
     dict_id = dict_id or _promoted(workspace)
     ws = Workspace.open(workspace)
     with ws.lease(codes_path(dict_id, records), run=_run_name(), break_existing=break_lease) as held:
-        prepared = prepare_encode(ws, records, dict_id, coder=coder,
-                                  coder_options=coder_options, overwrite=overwrite)
+        options = EncodeOptions(coder=coder, coder_options=coder_options, on_bad_chunk=on_bad_chunk)
+        prepared = prepare_encode(ws, records, dict_id, options, overwrite=overwrite)
         batches = plan_batches(prepared["pending"], workers, batches_per_worker)
         logger.info("encode %s with %s: %d of %d chunks pending, %d batches",
                     records, dict_id, len(prepared["pending"]), prepared["n_chunks"], len(batches))
         start = time.perf_counter()
         progress = ChunkProgress(records, len(prepared["pending"]), "encode")
-        futures = [encode_task.submit(workspace, records, dict_id, b, blas_threads=blas_threads(workers),
-                                      on_bad_chunk=on_bad_chunk, lease=held.info.token)
+        futures = [encode_task.submit(workspace, records, dict_id, b, options,
+                                      blas_threads=blas_threads(workers), lease=held.info.token)
                    for b in batches]
         results = []
         for future in as_completed(futures):
@@ -156,11 +158,11 @@ def pool_flow(workspace: str, records: str, dict_id: str | None = None, reduce: 
     dict_id = dict_id or _promoted(workspace)
     ws = Workspace.open(workspace)
     with ws.lease(features_path(dict_id, records), run=_run_name(), break_existing=break_lease) as held:
-        prepared = prepare_pool(ws, records, dict_id, reduce=reduce, split_sign=split_sign,
-                                regions=_tuple(regions), overwrite=overwrite)
+        options = PoolOptions(reduce=reduce, split_sign=split_sign, regions=regions,
+                              on_bad_chunk=on_bad_chunk)
+        prepared = prepare_pool(ws, records, dict_id, options, overwrite=overwrite)
         start = time.perf_counter()
-        futures = [pool_task.submit(workspace, records, dict_id, b, on_bad_chunk=on_bad_chunk,
-                                    lease=held.info.token)
+        futures = [pool_task.submit(workspace, records, dict_id, b, options, lease=held.info.token)
                    for b in plan_batches(prepared["pending"], workers, batches_per_worker)]
         results = [f.result() for f in futures]
         skipped = _record_skips(ws, features_path(dict_id, records), records)
@@ -186,10 +188,9 @@ def evaluate_flow(workspace: str, records: str, dict_id: str | None = None, labe
     ``on_bad_chunk="skip"`` leaves out the rows of features chunks that do not decode.
     """
     dict_id = dict_id or _promoted(workspace)
-    manifest = evaluate_task(workspace, records, dict_id, labels=labels,
-                             **_evaluation_options(folds, classifier, C, max_rows, seed, baselines,
-                                                   learning_curve, n_boot), tag=tag,
-                             on_bad_chunk=on_bad_chunk)
+    options = _evaluation_options(folds, classifier, C, max_rows, seed, baselines, learning_curve,
+                                  n_boot, on_bad_chunk)
+    manifest = evaluate_task(workspace, records, dict_id, options, labels=labels, tag=tag)
     paths = render_task(workspace, manifest["run_id"], class_names) if pictures else []
     manifest["pictures"] = paths
     publish_evaluation(Workspace.open(workspace), manifest, records,
@@ -198,11 +199,13 @@ def evaluate_flow(workspace: str, records: str, dict_id: str | None = None, labe
     return manifest
 
 
-def _evaluation_options(folds, classifier, C, max_rows, seed, baselines, learning_curve, n_boot) -> dict:
-    return dict(folds=folds, classifier=classifier, C=C, max_rows=max_rows, seed=seed,
-                baselines=tuple(BASELINES if baselines is None else baselines),
-                learning_curve=tuple(DEFAULT_CURVE if learning_curve is None else learning_curve),
-                n_boot=n_boot)
+def _evaluation_options(folds, classifier, C, max_rows, seed, baselines, learning_curve, n_boot,
+                        on_bad_chunk) -> EvaluateOptions:
+    return EvaluateOptions(folds=folds, classifier=classifier, C=C, max_rows=max_rows, seed=seed,
+                           baselines=tuple(BASELINES if baselines is None else baselines),
+                           learning_curve=tuple(DEFAULT_CURVE if learning_curve is None
+                                                else learning_curve),
+                           n_boot=n_boot, on_bad_chunk=on_bad_chunk)
 
 
 def _log_scores(logger, manifest: dict) -> None:
@@ -281,8 +284,8 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
     if metric not in SCORES:
         raise InputError(problem("metric", f"one of {SCORES}", repr(metric), "Pick a listed score."))
     gate_decision({"difference": 0.0, "low": 0.0}, tolerance)  # refuses a negative tolerance early
-    evaluation = dict(labels=labels, **_evaluation_options(folds, classifier, C, max_rows, seed,
-                                                            baselines, learning_curve, n_boot))
+    evaluation = _evaluation_options(folds, classifier, C, max_rows, seed, baselines, learning_curve,
+                                     n_boot, on_bad_chunk)
     if retrain not in RETRAIN:
         raise InputError(problem("retrain", f"one of {sorted(RETRAIN)}", repr(retrain),
                                  "Pick a listed policy."))
@@ -292,7 +295,10 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
         labels=labels, n_atoms=n_atoms, patch_size=patch_size, stride=stride, method=method, coder=coder,
         coder_options=coder_options, learner_options=learner_options, preprocessing=preprocessing,
         sample_patches=sample_patches, reduce=reduce, split_sign=split_sign, regions=regions,
-        metric=metric, tolerance=tolerance, evaluation=evaluation, retrain_on_drift=retrain_on_drift,
+        metric=metric, tolerance=tolerance,
+        evaluation=dict(labels=labels, **{k: v for k, v in dataclasses.asdict(evaluation).items()
+                                          if k != "on_bad_chunk"}),
+        retrain_on_drift=retrain_on_drift,
         drift_since=drift_since, drift_threshold=drift_threshold, on_bad_chunk=on_bad_chunk,
         retrain=retrain))
     recorded = _recorded_decision(ws, run_key)
@@ -321,8 +327,9 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
         report.update(candidate_id=None, outcome="kept")
         return _finish(workspace, records, report, fail_on_regression, run_key, recorded)
     if retrain_on_drift and previous is not None and drift_since is not None:
-        report["drift"] = detect_drift(workspace, records, previous, drift_since,
-                                       threshold=drift_threshold, seed=seed)
+        report["drift"] = detect_drift(workspace, records, previous,
+                                       DriftOptions(retrain_on_drift, drift_since, drift_threshold),
+                                       seed=seed)
         logger.info("drift of rows %d: error %+.1f%%, nonzeros %+.1f%% (threshold %.0f%%)",
                     drift_since, 100 * report["drift"]["error_change"],
                     100 * report["drift"]["nonzeros_change"], 100 * drift_threshold)
@@ -337,8 +344,7 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
                             sample_patches=sample_patches, seed=seed, break_lease=break_lease)
     candidate_id = trained["dict_id"]
     encoded, pooled = features_for(candidate_id)
-    cand_eval = evaluate_task(workspace, records, candidate_id, tag="candidate", on_bad_chunk=on_bad_chunk,
-                              **evaluation)
+    cand_eval = evaluate_task(workspace, records, candidate_id, evaluation, labels=labels, tag="candidate")
     report.update(candidate_id=candidate_id, train=trained, encode=encoded, pool=pooled,
                   candidate=cand_eval)
     if previous is None:
@@ -347,8 +353,9 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
         outcome = "unchanged"
     else:
         features_for(previous)
-        prev_eval = evaluate_task(workspace, records, previous, tag="promoted", on_bad_chunk=on_bad_chunk,
-                                  **dict(evaluation, baselines=(), learning_curve=()))
+        prev_eval = evaluate_task(workspace, records, previous,
+                                  dataclasses.replace(evaluation, baselines=(), learning_curve=()),
+                                  labels=labels, tag="promoted")
         comparison = compare_evaluations(workspace, cand_eval["run_id"], prev_eval["run_id"],
                                          n_boot=n_boot, seed=seed)
         report.update(promoted=prev_eval, gate=comparison[metric])
@@ -474,7 +481,3 @@ def _record_skips(ws: Workspace, path: str, records: str) -> dict:
 def _promoted(workspace: str) -> str:
     return promoted_or_named(Workspace.open(workspace), None)
 
-
-def _tuple(value):
-    """Prefect parameters arrive as JSON: lists become the tuples the stages expect."""
-    return tuple(value) if isinstance(value, list) else value

@@ -20,6 +20,7 @@ import numpy as np
 from .kernels.coding import code
 from .errors import InputError, problem
 from .kernels.prep import Normaliser, PatchGeometry
+from .options import DriftOptions
 from .workspace import Workspace, iter_row_chunks
 
 __all__ = ["measure_fit", "compare_drift", "detect_drift"]
@@ -103,15 +104,20 @@ def compare_drift(new: dict, reference: dict, threshold: float = 0.2) -> dict:
             "drifted": bool(error_change > threshold or abs(nonzeros_change) > threshold)}
 
 
-def detect_drift(workspace: Workspace | str, records: str, dict_id: str, since: int, *,
-                 threshold: float = 0.2, max_patches: int = 20_000, seed: int = 0) -> dict:
-    """Rows ``since:`` (new) against rows ``:since`` (those the dictionary was trained on).
+def detect_drift(workspace: Workspace | str, records: str, dict_id: str, options: DriftOptions, *,
+                 max_patches: int = 20_000, seed: int = 0) -> dict:
+    """Rows ``since:`` (new) against rows ``:since`` (those the dictionary was trained on),
+    with ``since`` and ``threshold`` the options' ``drift_since`` and ``drift_threshold``.
 
     Returns
     -------
     dict
         ``{"reference": measure_fit(...), "new": measure_fit(...), **compare_drift(...)}``
     """
+    since, threshold = options.drift_since, options.drift_threshold
+    if since is None:
+        raise InputError(problem("drift_since", "the first new row", "none",
+                                 "Name the first row appended since the dictionary was trained."))
     reference = measure_fit(workspace, records, dict_id, slice(0, since), max_patches=max_patches, seed=seed)
     new = measure_fit(workspace, records, dict_id, slice(since, None), max_patches=max_patches, seed=seed)
     return {"reference": reference, "new": new, **compare_drift(new, reference, threshold)}

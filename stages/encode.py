@@ -26,7 +26,8 @@ from .checks import check_record_shape, resolve_coder
 from .kernels.coding import code, code_outputs, code_width, gram
 from .errors import BadChunk, FingerprintMismatch, InputError, problem, retry_if_transient
 from .kernels.prep import Normaliser, PatchGeometry
-from .workspace import Workspace, check_bad_chunk_choice, fingerprint_params, iter_row_chunks
+from .options import EncodeOptions
+from .workspace import Workspace, fingerprint_params, iter_row_chunks
 
 __all__ = ["prepare_encode", "encode_chunks", "encode_task", "codes_path"]
 
@@ -40,9 +41,8 @@ def prepare_encode(
     workspace: Workspace | str,
     records: str,
     dict_id: str,
+    options: EncodeOptions = EncodeOptions(),
     *,
-    coder: str | None = None,
-    coder_options: dict | None = None,
     overwrite: bool = False,
 ) -> dict:
     """Create or reopen the codes output and list the chunks left to encode.
@@ -54,12 +54,11 @@ def prepare_encode(
         Name of the records array.
     dict_id : str
         A complete dictionary of the workspace.
-    coder : str, optional
-        Coder name; by default the one the dictionary was trained with.
-    coder_options : dict, optional
-        Its options. With the dictionary's own coder they are merged into the training
-        ones (each given option replaces only the one of its name); with another coder
-        they are all the options. Unknown option names are refused, naming the known ones.
+    options : EncodeOptions
+        ``coder``: by default the one the dictionary was trained with; ``coder_options``:
+        with the dictionary's own coder they are merged into the training ones (each given
+        option replaces only the one of its name); with another coder they are all the
+        options. Unknown option names are refused, naming the known ones.
     overwrite : bool
         Replace codes made from other inputs or parameters.
 
@@ -73,7 +72,7 @@ def prepare_encode(
     stored = ws.load_dictionary(dict_id)
     geometry = PatchGeometry.from_attrs(stored.attrs["geometry"])
     check_record_shape(dict_id, geometry.record_shape, records, arr.shape[1:])
-    coder, coder_options = resolve_coder(stored.attrs, coder, coder_options)
+    coder, coder_options = resolve_coder(stored.attrs, options.coder, options.coder_options)
     resolved = _resolve_options(ws, dict_id, coder, coder_options)
     width = code_width(coder, stored.atoms.shape[0], **resolved)
     P = geometry.patches_per_record
@@ -119,10 +118,10 @@ def encode_chunks(
     records: str,
     dict_id: str,
     chunks: list[int],
+    options: EncodeOptions = EncodeOptions(),
     *,
     blas_threads: int | None = None,
     storage_options: dict | None = None,
-    on_bad_chunk: str = "stop",
     lease: str | None = None,
 ) -> dict:
     """Encode a batch of row chunks into the prepared codes output.
@@ -136,11 +135,14 @@ def encode_chunks(
     dict_id : str
     chunks : list of int
         Row-chunk numbers of the records array (each owned by this call alone).
+    options : EncodeOptions
+        Only ``on_bad_chunk`` is read here: the coder and its options are the prepared
+        output's (:func:`prepare_encode`).
     blas_threads : int, optional
         Limit BLAS threads while coding (so workers × threads stay within the cores).
     storage_options : dict, optional
         For opening ``workspace`` when it is a URL.
-    on_bad_chunk : {"stop", "skip"}
+    options.on_bad_chunk : {"stop", "skip"}
         What to do with a missing or unreadable input chunk: raise
         :class:`~atomline.stages.errors.BadChunk` naming it, or mark its output chunk
         skipped (flag 2, fill values) and go on; the skipped rows are listed in the
@@ -157,7 +159,7 @@ def encode_chunks(
         skipped now for bad input, "records": records coded, "patches": patches coded,
         "seconds": wall time}``
     """
-    check_bad_chunk_choice(on_bad_chunk)
+    on_bad_chunk = options.on_bad_chunk  # checked when the options were made
     start = time.perf_counter()
     ws = (workspace if isinstance(workspace, Workspace)
           else Workspace.open(workspace, storage_options=storage_options))

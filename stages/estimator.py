@@ -32,6 +32,7 @@ from .errors import InputError, problem
 from .kernels.learning import learn
 from .pool import pool_codes, region_of_patches
 from .kernels.prep import Normaliser, PatchGeometry
+from .options import PoolOptions, TrainOptions
 
 __all__ = ["SparseCodePooler"]
 
@@ -118,18 +119,19 @@ class SparseCodePooler(TransformerMixin, BaseEstimator):
         """
         X = validate_data(self, X, dtype=[np.float64, np.float32])
         geometry = self._geometry(X.shape[1])
-        region_of_patches(geometry.grid, self.regions)  # refuse bad regions before learning
+        train, pool = self._options(geometry)  # refuses bad values before learning
+        region_of_patches(geometry.grid, pool.regions)  # refuse bad regions before learning
         patches = geometry.extract(X.reshape(X.shape[0], *geometry.record_shape)).astype(np.float64)
-        rng = np.random.default_rng(self.seed)
-        if patches.shape[0] > self.sample_patches:
-            patches = patches[np.sort(rng.choice(patches.shape[0], self.sample_patches, replace=False))]
-        if patches.shape[0] < self.n_atoms:
-            raise InputError(problem("X", f"at least n_atoms = {self.n_atoms} patches to learn from",
+        rng = np.random.default_rng(train.seed)
+        if patches.shape[0] > train.sample_patches:
+            patches = patches[np.sort(rng.choice(patches.shape[0], train.sample_patches, replace=False))]
+        if patches.shape[0] < train.n_atoms:
+            raise InputError(problem("X", f"at least n_atoms = {train.n_atoms} patches to learn from",
                                      f"{patches.shape[0]} patches from n_samples = {X.shape[0]}",
                                      "Pass more records or ask for fewer atoms."))
-        learned = learn(patches, int(self.n_atoms), self.method, preprocessing=Normaliser(),
-                        coder=self.coder, coder_options=self._coder_options(geometry),
-                        seed=self.seed, **(self.learner_options or {}))
+        learned = learn(patches, train.n_atoms, train.method, preprocessing=Normaliser(),
+                        coder=train.coder, coder_options=train.train_coder_options,
+                        seed=train.seed, **(train.learner_options or {}))
         self.atoms_ = learned.atoms
         self.normaliser_ = learned.preprocessing
         self.geometry_ = geometry
@@ -189,6 +191,16 @@ class SparseCodePooler(TransformerMixin, BaseEstimator):
         return tags
 
     # ------------------------------------------------------------------ helpers
+    def _options(self, geometry: PatchGeometry) -> tuple[TrainOptions, PoolOptions]:
+        """The constructor's flat parameters (scikit-learn's protocol) as the stages' options,
+        checked the same way."""
+        train = TrainOptions(n_atoms=self.n_atoms, patch_size=self.patch_size, stride=self.stride,
+                             method=self.method, coder=self.coder,
+                             coder_options=self._coder_options(geometry),
+                             learner_options=self.learner_options,
+                             sample_patches=self.sample_patches, seed=self.seed)
+        return train, PoolOptions(reduce=self.reduce, split_sign=self.split_sign, regions=self.regions)
+
     def _geometry(self, n_columns: int) -> PatchGeometry:
         shape = (n_columns,) if self.record_shape is None else tuple(int(s) for s in self.record_shape)
         if int(np.prod(shape)) != n_columns:

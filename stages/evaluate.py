@@ -60,22 +60,20 @@ from threadpoolctl import threadpool_limits
 
 from .kernels.coding import code, gram
 from .encode import codes_path
-from .checks import check_curve, check_folds, check_tolerance
+from .checks import check_folds, check_tolerance
 from .errors import BadChunk, InputError, problem
 from .pool import features_path, pool_codes, region_of_patches
 from .kernels.prep import Normaliser, PatchGeometry
 from .kernels.scoring import confusion, paired_bootstrap, scores_from_confusion
-from .workspace import Workspace, check_bad_chunk_choice, fingerprint_params, iter_row_chunks
+from .options import BASELINES, CLASSIFIERS, DEFAULT_CURVE, EvaluateOptions
+from .workspace import Workspace, fingerprint_params, iter_row_chunks
 
 __all__ = ["evaluate_features", "evaluate_task", "evaluation_key", "cross_predict", "make_classifier",
            "baseline_atoms", "compare_evaluations", "gate_decision", "CLASSIFIERS",
            "BASELINES", "GATE_OUTCOMES"]
 
-CLASSIFIERS = ("logistic", "linear-svm")
-BASELINES = ("raw", "random_patches", "pca")
-#: Shares of each fold's training rows on the learning curve (the full share is the
-#: main result and is added to the curve).
-DEFAULT_CURVE = (0.05, 0.15, 0.4)
+# CLASSIFIERS, BASELINES and DEFAULT_CURVE are declared with the options; on the learning
+# curve the full share is the main result and is added to the curve.
 #: Patches drawn from the evaluated rows to build the random-patch and PCA dictionaries.
 _BASELINE_SAMPLE = 20_000
 
@@ -176,19 +174,11 @@ def evaluate_features(
     workspace: Workspace | str,
     records: str,
     dict_id: str,
+    options: EvaluateOptions = EvaluateOptions(),
     *,
     labels: str | None = None,
-    folds: int = 5,
-    classifier: str = "logistic",
-    C: float = 1.0,
-    max_rows: int = 20_000,
-    seed: int = 0,
-    baselines: tuple[str, ...] | list[str] = BASELINES,
-    learning_curve: tuple[float, ...] | list[float] = DEFAULT_CURVE,
-    n_boot: int = 2000,
     tag: str = "",
     blas_threads: int | None = 1,
-    on_bad_chunk: str = "stop",
 ) -> dict:
     """Evaluate pooled features against the baselines and append the result.
 
@@ -198,22 +188,16 @@ def evaluate_features(
     records : str
     dict_id : str
         Features ``features/<dict_id>/<records>`` must be complete.
+    options : EvaluateOptions
+        ``folds`` (stratified, ≥ 2; every class needs at least this many rows),
+        ``classifier`` ({"logistic", "linear-svm"}) and its ``C``, ``max_rows`` (at most
+        this many labelled rows, a stratified seeded sample), ``seed`` (the row sample,
+        the folds, the baselines and the bootstrap), ``baselines`` (any of
+        :data:`BASELINES`; empty for none), ``learning_curve`` (shares in (0, 1) of each
+        fold's training rows; empty for no curve), ``n_boot`` (bootstrap resamples for the
+        intervals), ``on_bad_chunk`` (below).
     labels : str, optional
         Name of the labels array; defaults to ``records``.
-    folds : int
-        Number of stratified folds (≥ 2); every class needs at least this many rows.
-    classifier : {"logistic", "linear-svm"}
-    C : float
-    max_rows : int
-        At most this many labelled rows (stratified seeded sample).
-    seed : int
-        Seeds the row sample, the folds, the baselines and the bootstrap.
-    baselines : sequence of str
-        Any of :data:`BASELINES`; empty for none.
-    learning_curve : sequence of float
-        Shares in (0, 1) of each fold's training rows; empty for no curve.
-    n_boot : int
-        Bootstrap resamples for the intervals.
     tag : str
         Free text stored with the evaluation (e.g. ``"candidate"``).
     blas_threads : int, optional
@@ -221,7 +205,7 @@ def evaluate_features(
         The classifiers' matrices are small, so one thread loses little and avoids
         oversubscribing cores shared with other workers (on the 2-core test machine under
         load, one evaluation of the digits took ~3 s with one thread and ~30 s with two).
-    on_bad_chunk : {"stop", "skip"}
+    options.on_bad_chunk : {"stop", "skip"}
         A features chunk that cannot be decoded raises
         :class:`~atomline.stages.errors.BadChunk` naming it, or (``"skip"``) its rows are
         left out like those of skipped chunks and counted in ``rows_lacking``. A bad
@@ -237,14 +221,11 @@ def evaluate_features(
         ``reused`` (True when a complete evaluation with the same key was found and
         returned instead of evaluating again).
     """
-    check_bad_chunk_choice(on_bad_chunk)
+    # Every option was checked when ``options`` was made (EvaluateOptions.__post_init__).
+    folds, classifier, C, max_rows = options.folds, options.classifier, options.C, options.max_rows
+    seed, baselines, learning_curve = options.seed, options.baselines, options.learning_curve
+    n_boot, on_bad_chunk = options.n_boot, options.on_bad_chunk
     ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
-    unknown = sorted(set(baselines) - set(BASELINES))
-    if unknown:
-        raise InputError(problem("baselines", f"a subset of {BASELINES}", str(unknown),
-                                 "Drop the unknown names."))
-    check_curve(learning_curve)
-    make_classifier(classifier)  # refuse an unknown classifier before any work
     out = ws.output(features_path(dict_id, records))
     if not out.complete:
         raise InputError(problem(features_path(dict_id, records), "complete features",

@@ -30,6 +30,7 @@ atomline.stages.errors.InputError: reduce: expected one of ('max', 'mean'), foun
 
 import dataclasses
 import math
+import numbers
 import os
 from dataclasses import dataclass, field
 from typing import Any
@@ -91,15 +92,20 @@ def _one_of(where: str, value: Any, choices, fix: str) -> None:
         raise InputError(problem(where, f"one of {tuple(choices)}", repr(value), fix))
 
 
+def _integer(value: Any) -> bool:
+    # numbers.Integral: numpy integers too (a grid search hands them over); bools are not counts.
+    return isinstance(value, numbers.Integral) and not isinstance(value, bool)
+
+
 def _positive_int(where: str, value: Any, fix: str, low: int = 1) -> None:
-    if isinstance(value, bool) or not isinstance(value, int) or value < low:
-        found = repr(value) if not isinstance(value, int) or isinstance(value, bool) else str(value)
+    if not _integer(value) or value < low:
+        found = str(int(value)) if _integer(value) else repr(value)
         raise InputError(problem(where, "a positive integer" if low == 1 else f"an integer >= {low}",
                                  found, fix))
 
 
 def _finite(where: str, value: Any, low: float, fix: str, strict: bool = False) -> None:
-    ok = isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value) \
+    ok = isinstance(value, numbers.Real) and not isinstance(value, bool) and math.isfinite(value) \
         and (value > low if strict else value >= low)
     if not ok:
         raise InputError(problem(where, f"a finite number {'>' if strict else '>='} {low}",
@@ -128,8 +134,8 @@ def _set(obj: Any, **values: Any) -> None:
 def _check_geometry(where: str, value: Any) -> None:
     if value is None:
         return
-    sizes = (value,) if isinstance(value, int) else value
-    if not sizes or any(isinstance(s, bool) or not isinstance(s, int) or s < 1 for s in sizes):
+    sizes = (value,) if _integer(value) else value
+    if not sizes or any(not _integer(s) or s < 1 for s in sizes):
         raise InputError(problem(where, "a positive integer per axis, or none", repr(value),
                                  "Use e.g. 64 (1-D) or 8 8 (images)."))
 
@@ -291,8 +297,10 @@ class EvaluateOptions:
         _finite("C", self.C, 0.0, "Use e.g. C=1.0.", strict=True)
         _positive_int("max_rows", self.max_rows, "Use e.g. 20000 rows.")
         _positive_int("seed", self.seed, "Use a seed of 0 or more.", low=0)
-        for name in self.baselines:
-            _one_of("baselines", name, BASELINES, "Pick listed baselines, or none.")
+        unknown = sorted(set(self.baselines) - set(BASELINES))
+        if unknown:
+            raise InputError(problem("baselines", f"a subset of {BASELINES}", str(unknown),
+                                     "Drop the unknown names."))
         check_curve(self.learning_curve)
         _positive_int("n_boot", self.n_boot, "Use e.g. 2000 resamples.")
         _one_of("on_bad_chunk", self.on_bad_chunk, BAD_CHUNK_CHOICES, "Pick 'stop' or 'skip'.")
@@ -352,7 +360,7 @@ class DriftOptions:
     def __post_init__(self) -> None:
         if self.drift_since is not None:
             _positive_int("drift_since", self.drift_since, "Name the first new row (1 or more).")
-        _finite("drift_threshold", self.drift_threshold, 0.0, "Use e.g. 0.2.", strict=True)
+        _finite("drift_threshold", self.drift_threshold, 0.0, "Use e.g. 0.2.")
 
 
 def _cores() -> int:
@@ -379,7 +387,7 @@ class RunnerOptions:
     def __post_init__(self) -> None:
         _set(self, dask_options=_dict_or_none(self.dask_options, "dask_options"))
         _one_of("runner", self.runner, RUNNERS, "Pick a listed runner.")
-        if isinstance(self.workers, bool) or not isinstance(self.workers, int):
+        if not _integer(self.workers):
             raise InputError(problem("workers", "a positive integer", repr(self.workers),
                                      "Use --workers 1 or more."))
         check_workers(self.workers)

@@ -28,12 +28,12 @@ from .checks import check_regions
 from .errors import BadChunk, FingerprintMismatch, InputError, problem, retry_if_transient
 from .encode import codes_path
 from .kernels.prep import PatchGeometry
-from .workspace import Workspace, check_bad_chunk_choice, fingerprint_params
+from .options import REDUCTIONS, PoolOptions
+from .workspace import Workspace, fingerprint_params
 
 __all__ = ["pool_codes", "region_of_patches", "prepare_pool", "pool_chunks", "pool_task",
            "features_path"]
 
-REDUCTIONS = ("max", "mean")
 
 
 def features_path(dict_id: str, records: str) -> str:
@@ -130,10 +130,8 @@ def prepare_pool(
     workspace: Workspace | str,
     records: str,
     dict_id: str,
+    options: PoolOptions = PoolOptions(),
     *,
-    reduce: str = "max",
-    split_sign: bool = True,
-    regions: int | tuple[int, ...] = 4,
     overwrite: bool = False,
 ) -> dict:
     """Create or reopen ``features/<dict-id>/<records>`` and list the chunks left.
@@ -143,10 +141,9 @@ def prepare_pool(
     workspace : Workspace or str
     records, dict_id : str
         The codes ``codes/<dict_id>/<records>`` must exist (chunks are pooled once encoded).
-    reduce : {"max", "mean"}
-    split_sign : bool
-    regions : int or tuple of int
-        Equal parts per spatial axis of the patch grid.
+    options : PoolOptions
+        ``reduce`` ({"max", "mean"}), ``split_sign``, ``regions`` (equal parts per
+        spatial axis of the patch grid).
     overwrite : bool
 
     Returns
@@ -154,6 +151,7 @@ def prepare_pool(
     dict
         ``{"output", "n_chunks", "pending", "n_features"}``
     """
+    reduce, split_sign, regions = options.reduce, options.split_sign, options.regions
     ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
     codes = ws.output(codes_path(dict_id, records))
     cattrs = codes.attrs
@@ -184,9 +182,9 @@ def pool_chunks(
     records: str,
     dict_id: str,
     chunks: list[int],
+    options: PoolOptions = PoolOptions(),
     *,
     storage_options: dict | None = None,
-    on_bad_chunk: str = "stop",
     lease: str | None = None,
 ) -> dict:
     """Pool a batch of chunks whose codes are finished.
@@ -197,8 +195,10 @@ def pool_chunks(
     records, dict_id : str
     chunks : list of int
         Record-chunk numbers, each owned by this call alone.
+    options : PoolOptions
+        Only ``on_bad_chunk`` is read here (the pooling is the prepared output's).
     storage_options : dict, optional
-    on_bad_chunk : {"stop", "skip"}
+    options.on_bad_chunk : {"stop", "skip"}
         What to do with a codes chunk that cannot be decoded: raise
         :class:`~atomline.stages.errors.BadChunk` naming it, or mark the features chunk
         skipped (flag 2) and go on, as :func:`~atomline.stages.encode.encode_chunks` does.
@@ -212,7 +212,7 @@ def pool_chunks(
         ``{"pooled", "skipped", "bad": chunks skipped now for unreadable codes,
         "records", "seconds"}``
     """
-    check_bad_chunk_choice(on_bad_chunk)
+    on_bad_chunk = options.on_bad_chunk  # checked when the options were made
     start = time.perf_counter()
     ws = (workspace if isinstance(workspace, Workspace)
           else Workspace.open(workspace, storage_options=storage_options))

@@ -18,9 +18,9 @@ from prefect import task
 from prefect.cache_policies import NO_CACHE
 
 from .checks import check_sample_size
-from .kernels.learning import (TRAIN_CODER_OPTIONS, TRAIN_OWN_OPTIONS, check_learner_options, learn,
-                       takes_coder)
+from .kernels.learning import TRAIN_OWN_OPTIONS, check_learner_options, learn, takes_coder
 from .kernels.prep import Normaliser, PatchGeometry
+from .options import TrainOptions
 from .workspace import Workspace, fingerprint_params, iter_row_chunks
 
 __all__ = ["train_dictionary", "train_task", "train_encoder", "train_encoder_task"]
@@ -29,17 +29,8 @@ __all__ = ["train_dictionary", "train_task", "train_encoder", "train_encoder_tas
 def train_dictionary(
     workspace: Workspace | str,
     records: str,
+    options: TrainOptions = TrainOptions(),
     *,
-    n_atoms: int = 128,
-    patch_size: int | tuple[int, ...] | None = None,
-    stride: int | tuple[int, ...] | None = None,
-    method: str = "online",
-    coder: str = "omp",
-    coder_options: dict | None = None,
-    learner_options: dict | None = None,
-    preprocessing: dict | None = None,
-    sample_patches: int = 20_000,
-    seed: int = 0,
     dict_id: str | None = None,
     run: str | None = None,
     break_lease: bool = False,
@@ -52,25 +43,10 @@ def train_dictionary(
         The workspace or its URL.
     records : str
         Name of the records array.
-    n_atoms : int
-        ``k``.
-    patch_size, stride : int or tuple, optional
-        Patch geometry (see :class:`~atomline.stages.kernels.prep.PatchGeometry`); the whole
-        record is one patch when ``patch_size`` is ``None``.
-    method : str
-        Learner name (``atomline.stages.kernels.learning.METHODS``).
-    coder : str
-        Coder used inside the learner and, by default, by the encode stage.
-    coder_options : dict, optional
-        Its options; default ``{"n_nonzero": 5}``.
-    learner_options : dict, optional
-        Extra options of the learner.
-    preprocessing : dict, optional
-        Fields of :class:`~atomline.stages.kernels.prep.Normaliser`.
-    sample_patches : int
-        Patches in the training sample.
-    seed : int
-        Seeds the sample and the learner.
+    options : TrainOptions
+        Atoms, patch geometry (the whole record is one patch when ``patch_size`` is
+        ``None``), learner and its coder, preprocessing, sample size and seed (see
+        :class:`~atomline.stages.options.TrainOptions` for each one's meaning and default).
     dict_id : str, optional
         Id to store under; derived from the inputs by default.
     run : str, optional
@@ -86,9 +62,11 @@ def train_dictionary(
     """
     ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
     arr = ws.records(records)
-    geometry = PatchGeometry.for_records(arr.shape[1:], patch_size, stride)
-    coder_options = dict(TRAIN_CODER_OPTIONS) if coder_options is None else dict(coder_options)
-    learner_options = dict(learner_options or {})
+    n_atoms, method, coder, seed = options.n_atoms, options.method, options.coder, options.seed
+    sample_patches, preprocessing = options.sample_patches, options.preprocessing
+    geometry = PatchGeometry.for_records(arr.shape[1:], options.patch_size, options.stride)
+    coder_options = options.train_coder_options
+    learner_options = dict(options.learner_options or {})
     coder_kw = {"coder": coder, "coder_options": coder_options} if takes_coder(method) else {}
     normaliser = Normaliser(**(preprocessing or {}))
     check_sample_size(sample_patches, n_atoms)

@@ -21,6 +21,7 @@ os.environ.setdefault("ATOMLINE_PREFECT_START_TIMEOUT", "900")
 
 import numpy as np
 import pytest
+from atomline.stages.options import PoolOptions, TrainOptions
 
 
 @pytest.fixture(scope="session")
@@ -109,9 +110,9 @@ def digits_workspace():
     ws = Workspace.open(f"memory://digits-{uuid.uuid4().hex}", create=True)
     ws.add_records("digits", digits.images.astype(np.float32), chunk_rows=300)
     ws.add_labels("digits", digits.target)
-    dict_id = train.train_dictionary(ws, "digits", **DIGITS_TRAIN)["dict_id"]
+    dict_id = train.train_dictionary(ws, "digits", TrainOptions(**DIGITS_TRAIN))["dict_id"]
     encode.encode_chunks(ws, "digits", dict_id, encode.prepare_encode(ws, "digits", dict_id)["pending"])
-    pool.pool_chunks(ws, "digits", dict_id, pool.prepare_pool(ws, "digits", dict_id, regions=2)["pending"])
+    pool.pool_chunks(ws, "digits", dict_id, pool.prepare_pool(ws, "digits", dict_id, options=PoolOptions(regions=2))["pending"])
     return ws, dict_id
 
 

@@ -47,6 +47,7 @@ os.environ.setdefault("PREFECT_HOME", tempfile.mkdtemp(prefix="atomline-bench-pr
 os.environ.setdefault("PREFECT_LOGGING_LEVEL", "ERROR")
 
 import numpy as np  # noqa: E402
+from atomline.stages.options import TrainOptions
 
 D, K, NONZERO = 64, 128, 5
 BLOCK = 500_000  # rows generated and appended at a time (128 MB of float32)
@@ -359,8 +360,7 @@ def main() -> None:
         chunk = ws.describe_records("sig")["chunk_rows"]
         print(f"wrote {args.rows:,} rows in {time.perf_counter() - t0:.1f} s "
               f"({ws.describe_records('sig')['n_chunks']} chunks of {chunk} rows)")
-        dict_id = train_dictionary(ws, "sig", n_atoms=K, sample_patches=20_000, seed=0,
-                                   coder_options={"n_nonzero": NONZERO})["dict_id"]
+        dict_id = train_dictionary(ws, "sig", options=TrainOptions(n_atoms=K, sample_patches=20_000, seed=0, coder_options={"n_nonzero": NONZERO}))["dict_id"]
         stored = ws.load_dictionary(dict_id)
 
         # Bare numpy (same coder work, same BLAS threads per worker as the flow gives it) and

@@ -19,6 +19,7 @@ import pytest
 
 from atomline.flows import cli
 from atomline.stages.workspace import Workspace
+from atomline.stages.options import TrainOptions
 
 
 @pytest.fixture
@@ -146,8 +147,7 @@ def test_train_stage_refuses_a_misspelled_learner_option_before_reading(labelled
     monkeypatch.setattr(Workspace, "read_chunk", no_reading)
     with pytest.raises(InputError, match=r"options of learner 'averaged-sgd'.*'average_decay'.*"
                                          r"found unknown \['stepsize'\]"):
-        train_dictionary(labelled, "vib", n_atoms=8, patch_size=128, stride=128, sample_patches=500,
-                         method="averaged-sgd", learner_options={"stepsize": 0.5})
+        train_dictionary(labelled, "vib", options=TrainOptions(n_atoms=8, patch_size=128, stride=128, sample_patches=500, method="averaged-sgd", learner_options={"stepsize": 0.5}))
 
 
 @pytest.fixture
@@ -158,7 +158,7 @@ def trained(labelled, demo_small):
 
     ws = Workspace.open(labelled)
     ws.add_records("short", demo_small[0][:40, :1024], chunk_rows=40)
-    dict_id = train_dictionary(ws, "vib", n_atoms=8, patch_size=128, stride=128, sample_patches=500)["dict_id"]
+    dict_id = train_dictionary(ws, "vib", options=TrainOptions(n_atoms=8, patch_size=128, stride=128, sample_patches=500))["dict_id"]
     return labelled, dict_id
 
 

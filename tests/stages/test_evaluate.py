@@ -13,6 +13,7 @@ from threadpoolctl import threadpool_limits
 from atomline.stages import evaluate
 from atomline.stages.errors import InputError
 from atomline.stages.kernels.scoring import confusion, paired_bootstrap, scores_from_confusion
+from atomline.stages.options import EvaluateOptions
 
 
 def test_scores_equal_scikit_learn_including_absent_classes():
@@ -93,8 +94,7 @@ def test_baseline_atoms():
 @pytest.fixture(scope="module")
 def digits_evaluation(digits_workspace):
     ws, dict_id = digits_workspace
-    return evaluate.evaluate_features(ws, "digits", dict_id, folds=5, learning_curve=(0.1,),
-                                      n_boot=1000, seed=0, tag="digits")
+    return evaluate.evaluate_features(ws, "digits", dict_id, tag="digits", options=EvaluateOptions(folds=5, learning_curve=(0.1,), n_boot=1000, seed=0))
 
 
 def test_digits_sparse_features_not_worse_than_raw_pixels(digits_evaluation):
@@ -154,12 +154,10 @@ def test_evaluation_record_names_what_it_measured(digits_workspace, digits_evalu
 
 def test_compare_evaluations_needs_the_same_rows(digits_workspace, digits_evaluation):
     ws, dict_id = digits_workspace
-    again = evaluate.evaluate_features(ws, "digits", dict_id, baselines=(), learning_curve=(),
-                                       n_boot=200)
+    again = evaluate.evaluate_features(ws, "digits", dict_id, options=EvaluateOptions(baselines=(), learning_curve=(), n_boot=200))
     same = evaluate.compare_evaluations(ws, digits_evaluation["run_id"], again["run_id"], n_boot=200)
     assert same["accuracy"]["difference"] == same["accuracy"]["low"] == 0.0  # seeded: same predictions
-    other = evaluate.evaluate_features(ws, "digits", dict_id, baselines=(), learning_curve=(),
-                                       max_rows=900, n_boot=200)
+    other = evaluate.evaluate_features(ws, "digits", dict_id, options=EvaluateOptions(baselines=(), learning_curve=(), max_rows=900, n_boot=200))
     with pytest.raises(InputError, match="same rows"):
         evaluate.compare_evaluations(ws, digits_evaluation["run_id"], other["run_id"])
     assert other["n_rows"] == 900
@@ -167,14 +165,13 @@ def test_compare_evaluations_needs_the_same_rows(digits_workspace, digits_evalua
 
 def test_linear_svm_option_and_refusals(digits_workspace):
     ws, dict_id = digits_workspace
-    ev = evaluate.evaluate_features(ws, "digits", dict_id, classifier="linear-svm", baselines=("raw",),
-                                    learning_curve=(), n_boot=200, max_rows=600)
+    ev = evaluate.evaluate_features(ws, "digits", dict_id, options=EvaluateOptions(classifier="linear-svm", baselines=("raw",), learning_curve=(), n_boot=200, max_rows=600))
     stored = next(e for e in ws.evaluations() if e["run_id"] == ev["run_id"])
     assert stored["protocol"]["classifier"] == "linear-svm"
     assert ev["features"]["accuracy"] > 0.85
     with pytest.raises(InputError, match="classifier"):
-        evaluate.evaluate_features(ws, "digits", dict_id, classifier="forest")
+        evaluate.evaluate_features(ws, "digits", dict_id, options=EvaluateOptions(classifier="forest"))
     with pytest.raises(InputError, match="baselines"):
-        evaluate.evaluate_features(ws, "digits", dict_id, baselines=("raw", "wavelets"))
+        evaluate.evaluate_features(ws, "digits", dict_id, options=EvaluateOptions(baselines=("raw", "wavelets")))
     with pytest.raises(InputError, match="rows each"):
-        evaluate.evaluate_features(ws, "digits", dict_id, folds=500)
+        evaluate.evaluate_features(ws, "digits", dict_id, options=EvaluateOptions(folds=500))

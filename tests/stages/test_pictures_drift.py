@@ -13,6 +13,7 @@ from atomline.stages import report as pictures
 from atomline.stages.drift import compare_drift, detect_drift, measure_fit
 from atomline.stages.errors import InputError
 from atomline.stages.kernels.prep import PatchGeometry
+from atomline.stages.options import DriftOptions, EvaluateOptions
 
 HEIGHT, WIDTH = pictures.SIZE[1], pictures.SIZE[0]
 
@@ -37,8 +38,7 @@ def _assert_picture(png: bytes) -> np.ndarray:
 @pytest.fixture(scope="module")
 def digits_report(digits_workspace):
     ws, dict_id = digits_workspace
-    ev = evaluate.evaluate_features(ws, "digits", dict_id, baselines=("raw",), learning_curve=(0.2,),
-                                    n_boot=200, tag="pictures")
+    ev = evaluate.evaluate_features(ws, "digits", dict_id, tag="pictures", options=EvaluateOptions(baselines=("raw",), learning_curve=(0.2,), n_boot=200))
     paths = pictures.render_report(ws, ev["run_id"], class_names=[f"digit {i}" for i in range(10)])
     return ws, ev, paths
 
@@ -106,7 +106,7 @@ def drifting(digits_workspace):
 
 def test_new_rows_like_the_old_do_not_drift(digits_workspace):
     ws, dict_id = digits_workspace
-    result = detect_drift(ws, "digits", dict_id, since=1200, threshold=0.2, max_patches=8000)
+    result = detect_drift(ws, "digits", dict_id, DriftOptions(drift_since=1200, drift_threshold=0.2), max_patches=8000)
     assert result["reference"]["rows"] == [0, 1200] and result["new"]["rows"] == [1200, 1797]
     assert abs(result["error_change"]) < 0.2 and not result["drifted"]
     assert result["new"]["nonzeros"] == pytest.approx(3.0, abs=0.01)  # OMP with n_nonzero=3
@@ -114,7 +114,7 @@ def test_new_rows_like_the_old_do_not_drift(digits_workspace):
 
 def test_noisy_new_rows_drift(drifting):
     ws, dict_id = drifting
-    result = detect_drift(ws, "mixed", dict_id, since=1200, threshold=0.2, max_patches=8000)
+    result = detect_drift(ws, "mixed", dict_id, DriftOptions(drift_since=1200, drift_threshold=0.2), max_patches=8000)
     # White noise is spread over every direction: 3 atoms of 16-pixel patches capture
     # far less of its energy, so the relative error grows a lot.
     assert result["error_change"] > 0.5 and result["drifted"]

@@ -11,6 +11,7 @@ from conftest import store_snapshot
 from atomline.stages import encode, evaluate, pool, train
 from atomline.stages.errors import FingerprintMismatch, InputError, NotFound
 from atomline.stages.workspace import Workspace
+from atomline.stages.options import EncodeOptions, EvaluateOptions, PoolOptions, TrainOptions
 
 TRAIN = dict(n_atoms=32, patch_size=64, stride=32, sample_patches=4000, seed=1,
              coder_options={"n_nonzero": 4})
@@ -27,7 +28,7 @@ def _run_all(ws, dict_id, batches):
     prepared = encode.prepare_encode(ws, "vib", dict_id)
     for batch in batches(prepared["pending"]):
         encode.encode_chunks(ws, "vib", dict_id, batch)
-    pooled = pool.prepare_pool(ws, "vib", dict_id, regions=2)
+    pooled = pool.prepare_pool(ws, "vib", dict_id, options=PoolOptions(regions=2))
     pool.pool_chunks(ws, "vib", dict_id, pooled["pending"])
     codes = ws.output(encode.codes_path(dict_id, "vib")).group
     feats = ws.output(pool.features_path(dict_id, "vib")).group
@@ -42,7 +43,7 @@ def _chunk_bytes(ws, prefix):
 def trained(demo_small):
     X, y = demo_small
     ws = _workspace("memory://stages-trained", X, y, chunk_rows=50)
-    manifest = train.train_dictionary(ws, "vib", **TRAIN)
+    manifest = train.train_dictionary(ws, "vib", TrainOptions(**TRAIN))
     return ws, manifest["dict_id"]
 
 
@@ -50,7 +51,7 @@ def test_results_do_not_depend_on_chunk_size(demo_small, trained):
     X, y = demo_small
     ws_a, dict_a = trained
     ws_b = _workspace("memory://stages-chunk-120", X, y, chunk_rows=120)
-    dict_b = train.train_dictionary(ws_b, "vib", **TRAIN)["dict_id"]
+    dict_b = train.train_dictionary(ws_b, "vib", TrainOptions(**TRAIN))["dict_id"]
     # The sample is drawn by record number, so chunking does not change the dictionary.
     assert dict_a == dict_b
     np.testing.assert_array_equal(ws_a.load_dictionary(dict_a).atoms, ws_b.load_dictionary(dict_b).atoms)
@@ -66,7 +67,7 @@ def test_results_do_not_depend_on_worker_count(demo_small, trained):
     ws_ref, dict_id = trained
     reference = _run_all(ws_ref, dict_id, lambda p: [p])
     ws = _workspace("memory://stages-workers", X, y, chunk_rows=50)
-    train.train_dictionary(ws, "vib", **TRAIN)
+    train.train_dictionary(ws, "vib", TrainOptions(**TRAIN))
     prepared = encode.prepare_encode(ws, "vib", dict_id)
     batches = [prepared["pending"][i::3] for i in range(3)]  # interleaved, three threads
     with ThreadPoolExecutor(3) as pool_:
@@ -81,7 +82,7 @@ def test_interrupted_encode_resumes_to_the_same_bytes(demo_small, trained):
     ws_ref, dict_id = trained
     _run_all(ws_ref, dict_id, lambda p: [p])
     ws = _workspace("memory://stages-resume", X, y, chunk_rows=50)
-    train.train_dictionary(ws, "vib", **TRAIN)
+    train.train_dictionary(ws, "vib", TrainOptions(**TRAIN))
     first = encode.prepare_encode(ws, "vib", dict_id)
     encode.encode_chunks(ws, "vib", dict_id, first["pending"][:5])
     again = encode.prepare_encode(ws, "vib", dict_id)
@@ -97,7 +98,7 @@ def test_outputs_from_other_inputs_are_refused(trained):
     encode.prepare_encode(ws, "vib", dict_id)
     before = store_snapshot(ws)
     with pytest.raises(FingerprintMismatch, match="overwrite"):
-        encode.prepare_encode(ws, "vib", dict_id, coder="omp", coder_options={"n_nonzero": 2})
+        encode.prepare_encode(ws, "vib", dict_id, options=EncodeOptions(coder="omp", coder_options={"n_nonzero": 2}))
     assert store_snapshot(ws) == before
 
 
@@ -115,7 +116,7 @@ def test_dictionary_for_other_records_is_refused(trained):
 def test_pool_and_evaluate_wait_for_their_inputs(demo_small, memory_url):
     X, y = demo_small
     ws = _workspace(memory_url, X[:200], y[:200], chunk_rows=50)
-    dict_id = train.train_dictionary(ws, "vib", **TRAIN)["dict_id"]
+    dict_id = train.train_dictionary(ws, "vib", TrainOptions(**TRAIN))["dict_id"]
     prepared = encode.prepare_encode(ws, "vib", dict_id)
     encode.encode_chunks(ws, "vib", dict_id, prepared["pending"][:2])
     pooled = pool.prepare_pool(ws, "vib", dict_id)
@@ -129,8 +130,8 @@ def test_evaluations_are_appended(demo_small, trained):
     ws, dict_id = trained
     _run_all(ws, dict_id, lambda p: [p])
     light = dict(seed=0, learning_curve=(), n_boot=100)
-    first = evaluate.evaluate_features(ws, "vib", dict_id, baselines=("raw",), **light)
-    second = evaluate.evaluate_features(ws, "vib", dict_id, baselines=(), **light)
+    first = evaluate.evaluate_features(ws, "vib", dict_id, EvaluateOptions(**light, baselines=("raw",)))
+    second = evaluate.evaluate_features(ws, "vib", dict_id, EvaluateOptions(**light, baselines=()))
     history = ws.evaluations()
     assert [h["run_id"] for h in history][-2:] == [first["run_id"], second["run_id"]]
     # Same folds, same classifier: the same score twice.
@@ -145,7 +146,7 @@ def test_evaluations_are_appended(demo_small, trained):
 def coders_ws(demo_small):
     X, y = demo_small
     ws = _workspace("memory://stages-coders", X, y, chunk_rows=100)
-    return ws, train.train_dictionary(ws, "vib", **TRAIN)["dict_id"]
+    return ws, train.train_dictionary(ws, "vib", TrainOptions(**TRAIN))["dict_id"]
 
 
 CODERS = [
@@ -161,8 +162,7 @@ CODERS = [
 def test_every_coder_runs_through_encode_and_pool(coders_ws, coder, options):
     ws, dict_id = coders_ws
     k = ws.load_dictionary(dict_id).atoms.shape[0]
-    prepared = encode.prepare_encode(ws, "vib", dict_id, coder=coder, coder_options=options,
-                                     overwrite=True)
+    prepared = encode.prepare_encode(ws, "vib", dict_id, overwrite=True, options=EncodeOptions(coder=coder, coder_options=options))
     encode.encode_chunks(ws, "vib", dict_id, prepared["pending"])
     codes = ws.output(encode.codes_path(dict_id, "vib"))
     outputs = 2 * k if options.get("split_sign") else k
@@ -170,7 +170,7 @@ def test_every_coder_runs_through_encode_and_pool(coders_ws, coder, options):
     count, index = codes.group["count"][:], codes.group["index"][:]
     assert count.max() <= prepared["width"] and count.mean() > 0
     assert index.max() < outputs
-    pooled = pool.prepare_pool(ws, "vib", dict_id, regions=2, overwrite=True)
+    pooled = pool.prepare_pool(ws, "vib", dict_id, overwrite=True, options=PoolOptions(regions=2))
     pool.pool_chunks(ws, "vib", dict_id, pooled["pending"])
     feats = ws.output(pool.features_path(dict_id, "vib")).group["values"][:]
     assert feats.shape == (600, 2 * 2 * outputs) and np.isfinite(feats).all()
@@ -187,8 +187,7 @@ def test_learned_encoder_is_stored_with_its_dictionary_and_used_by_encode(coders
                                fit_options={"n_steps": 150})
     info = made["info"]
     assert info["relative_error_final"] < info["relative_error_initial"]
-    prepared = encode.prepare_encode(ws, "vib", dict_id, coder="learned",
-                                     coder_options={"encoder": "fast", "max_nonzero": 8}, overwrite=True)
+    prepared = encode.prepare_encode(ws, "vib", dict_id, overwrite=True, options=EncodeOptions(coder="learned", coder_options={"encoder": "fast", "max_nonzero": 8}))
     assert prepared["width"] == 8
     encode.encode_chunks(ws, "vib", dict_id, prepared["pending"][:1])
     out = ws.output(encode.codes_path(dict_id, "vib"))
@@ -205,7 +204,6 @@ def test_learned_encoder_is_stored_with_its_dictionary_and_used_by_encode(coders
     np.testing.assert_array_equal(out.group["count"][:n], direct.count)
     np.testing.assert_array_equal(out.group["value"][:n], direct.value.astype(np.float32))
     with pytest.raises(InputError, match="encoder"):
-        encode.prepare_encode(ws, "vib", dict_id, coder="learned", coder_options={}, overwrite=True)
+        encode.prepare_encode(ws, "vib", dict_id, overwrite=True, options=EncodeOptions(coder="learned", coder_options={}))
     with pytest.raises(NotFound):
-        encode.prepare_encode(ws, "vib", dict_id, coder="learned",
-                              coder_options={"encoder": "missing"}, overwrite=True)
+        encode.prepare_encode(ws, "vib", dict_id, overwrite=True, options=EncodeOptions(coder="learned", coder_options={"encoder": "missing"}))

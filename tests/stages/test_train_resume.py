@@ -15,6 +15,7 @@ import pytest
 from atomline.flows.demo import vibration_records
 from atomline.stages import train
 from atomline.stages.workspace import Workspace
+from atomline.stages.options import TrainOptions
 
 pytestmark = pytest.mark.slow
 
@@ -28,11 +29,12 @@ def test_killed_training_resumes_to_the_same_dictionary(tmp_path):
     Workspace.open(url, create=True).add_records("vib", X, chunk_rows=50)
     ref_url = str(tmp_path / "reference.zarr")
     shutil.copytree(url, ref_url)
-    reference = train.train_dictionary(ref_url, "vib", **OPTIONS)
+    reference = train.train_dictionary(ref_url, "vib", TrainOptions(**OPTIONS))
 
     child = subprocess.Popen([sys.executable, "-c", textwrap.dedent(f"""
         from atomline.stages import train
-        train.train_dictionary({url!r}, "vib", **{OPTIONS!r})
+        from atomline.stages.options import TrainOptions
+        train.train_dictionary({url!r}, "vib", TrainOptions(**{OPTIONS!r}))
     """)])
     dict_id = reference["dict_id"]
     saved = None
@@ -50,7 +52,7 @@ def test_killed_training_resumes_to_the_same_dictionary(tmp_path):
     assert not ws.has_dictionary(dict_id)  # killed: no dictionary, only a checkpoint
     assert ws.load_checkpoint(dict_id)["batches_seen"] >= saved
 
-    resumed = train.train_dictionary(url, "vib", **OPTIONS)
+    resumed = train.train_dictionary(url, "vib", TrainOptions(**OPTIONS))
     assert resumed["dict_id"] == dict_id and resumed["reused"] is False
     np.testing.assert_array_equal(Workspace.open(url).load_dictionary(dict_id).atoms,
                                   Workspace.open(ref_url).load_dictionary(dict_id).atoms)

@@ -15,6 +15,7 @@ import pytest
 
 from atomline.stages import encode, train
 from atomline.stages.workspace import Workspace
+from atomline.stages.options import TrainOptions
 
 pytestmark = [pytest.mark.slow, pytest.mark.usefixtures("prefect_harness")]
 
@@ -45,8 +46,7 @@ def test_sigkill_during_encode_then_rerun(tmp_path, demo_small):
     url = str(tmp_path / "ws.zarr")
     ws = Workspace.open(url, create=True)
     ws.add_records("vib", X, chunk_rows=8)
-    dict_id = train.train_dictionary(ws, "vib", n_atoms=64, patch_size=64, stride=16,
-                                     sample_patches=4000, seed=2)["dict_id"]
+    dict_id = train.train_dictionary(ws, "vib", options=TrainOptions(n_atoms=64, patch_size=64, stride=16, sample_patches=4000, seed=2))["dict_id"]
     ws.promote(dict_id)
 
     # Reference: an uninterrupted run of the same stage on a copy of the workspace.

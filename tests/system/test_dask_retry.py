@@ -10,6 +10,7 @@ from conftest import store_snapshot
 
 from atomline.stages import encode, train
 from atomline.stages.workspace import Workspace
+from atomline.stages.options import TrainOptions
 
 pytestmark = [pytest.mark.slow, pytest.mark.usefixtures("prefect_harness")]
 
@@ -23,8 +24,7 @@ def test_batch_raising_mid_way_is_retried_under_dask(tmp_path, demo_small, monke
     url = str(tmp_path / "ws.zarr")
     ws = Workspace.open(url, create=True)
     ws.add_records("vib", X[:120], chunk_rows=10)
-    dict_id = train.train_dictionary(ws, "vib", n_atoms=16, patch_size=128, stride=128,
-                                     sample_patches=1000, seed=0)["dict_id"]
+    dict_id = train.train_dictionary(ws, "vib", options=TrainOptions(n_atoms=16, patch_size=128, stride=128, sample_patches=1000, seed=0))["dict_id"]
     reference = str(tmp_path / "reference.zarr")
     shutil.copytree(url, reference)
     p = encode.prepare_encode(reference, "vib", dict_id)

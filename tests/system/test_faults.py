@@ -16,6 +16,7 @@ from zarr.storage import LocalStore
 from atomline.stages import encode, evaluate, pool, train
 from atomline.stages.errors import BadChunk, StoreFault
 from atomline.stages.workspace import Workspace
+from atomline.stages.options import EncodeOptions, EvaluateOptions, PoolOptions, TrainOptions
 
 TRAIN = dict(n_atoms=16, patch_size=128, stride=128, sample_patches=1000, seed=0,
              coder_options={"n_nonzero": 3})
@@ -45,7 +46,7 @@ def prepared(tmp_path_factory, demo_small):
     ws = Workspace.open(url, create=True)
     ws.add_records("vib", X[:160], chunk_rows=20)
     ws.add_labels("vib", y[:160])
-    dict_id = train.train_dictionary(ws, "vib", **TRAIN)["dict_id"]
+    dict_id = train.train_dictionary(ws, "vib", TrainOptions(**TRAIN))["dict_id"]
     reference = str(tmp_path_factory.mktemp("faults-ref") / "ws.zarr")
     shutil.copytree(url, reference)
     p = encode.prepare_encode(reference, "vib", dict_id)
@@ -113,7 +114,7 @@ def test_bad_input_chunk_skipped_and_recorded(prepared, tmp_path, how):
     url = _copy(url0, tmp_path)
     _damage(url, dict_id, 5, how)
     p = encode.prepare_encode(url, "vib", dict_id)
-    result = encode.encode_chunks(url, "vib", dict_id, p["pending"], on_bad_chunk="skip")
+    result = encode.encode_chunks(url, "vib", dict_id, p["pending"], options=EncodeOptions(on_bad_chunk="skip"))
     assert result["bad"] == 1 and result["encoded"] == p["n_chunks"] - 1
     again = encode.prepare_encode(url, "vib", dict_id)  # lists the skipped rows
     assert again["pending"] == [] and again["skipped_rows"] == 20
@@ -128,9 +129,9 @@ def test_bad_input_chunk_skipped_and_recorded(prepared, tmp_path, how):
     keep = np.r_[0 : 100 * P, 120 * P : 160 * P]
     np.testing.assert_array_equal(codes.group["value"][:][keep], ref["value"][:][keep])
     # Pooling carries the skip over; the evaluation says how many rows it lacked.
-    pp = pool.prepare_pool(ws, "vib", dict_id, regions=2)
+    pp = pool.prepare_pool(ws, "vib", dict_id, options=PoolOptions(regions=2))
     pool.pool_chunks(ws, "vib", dict_id, pp["pending"])
-    assert pool.prepare_pool(ws, "vib", dict_id, regions=2)["skipped_rows"] == 20
+    assert pool.prepare_pool(ws, "vib", dict_id, options=PoolOptions(regions=2))["skipped_rows"] == 20
     feats = ws.output(pool.features_path(dict_id, "vib"))
     assert feats.skipped_chunks() == [5] and (feats.group["values"][100:120] == 0).all()
     report = evaluate.evaluate_features(ws, "vib", dict_id)
@@ -164,15 +165,14 @@ def test_zero_and_constant_records_give_finite_codes(memory_url, demo_small, sca
     records[10] = np.float32(2.5 * scale)
     records[20:24] = 0.0
     ws.add_records("vib", records, chunk_rows=16)
-    dict_id = train.train_dictionary(ws, "vib", n_atoms=16, patch_size=128, stride=128,
-                                     sample_patches=800, seed=0, coder_options={"n_nonzero": 3})["dict_id"]
+    dict_id = train.train_dictionary(ws, "vib", options=TrainOptions(n_atoms=16, patch_size=128, stride=128, sample_patches=800, seed=0, coder_options={"n_nonzero": 3}))["dict_id"]
     p = encode.prepare_encode(ws, "vib", dict_id)
     encode.encode_chunks(ws, "vib", dict_id, p["pending"])
     codes = ws.output(encode.codes_path(dict_id, "vib")).group
     value, count = codes["value"][:], codes["count"][:]
     assert np.isfinite(value).all()
     assert (count <= 3).all()
-    pp = pool.prepare_pool(ws, "vib", dict_id, regions=2)
+    pp = pool.prepare_pool(ws, "vib", dict_id, options=PoolOptions(regions=2))
     pool.pool_chunks(ws, "vib", dict_id, pp["pending"])
     assert np.isfinite(ws.output(pool.features_path(dict_id, "vib")).group["values"][:]).all()
 
@@ -189,7 +189,7 @@ def pooled(prepared, tmp_path):
     """A private workspace with the codes of every chunk (from the reference) pooled."""
     _, reference, dict_id = prepared
     url = _copy(reference, tmp_path)
-    pp = pool.prepare_pool(url, "vib", dict_id, regions=2)
+    pp = pool.prepare_pool(url, "vib", dict_id, options=PoolOptions(regions=2))
     pool.pool_chunks(url, "vib", dict_id, pp["pending"])
     return url, dict_id
 
@@ -198,7 +198,7 @@ def pooled(prepared, tmp_path):
 def test_truncated_codes_chunk_stops_pool_naming_array_and_chunk(pooled, array):
     url, dict_id = pooled
     _truncate(os.path.join(url, "codes", dict_id, "vib", array, "c", "3", "0"))
-    pp = pool.prepare_pool(url, "vib", dict_id, regions=2, overwrite=True)
+    pp = pool.prepare_pool(url, "vib", dict_id, overwrite=True, options=PoolOptions(regions=2))
     with pytest.raises(BadChunk) as caught:
         pool.pool_chunks(url, "vib", dict_id, pp["pending"])
     message = str(caught.value)
@@ -209,12 +209,12 @@ def test_truncated_codes_chunk_stops_pool_naming_array_and_chunk(pooled, array):
 def test_truncated_codes_chunk_skipped_by_pool_and_left_out_by_evaluate(pooled):
     url, dict_id = pooled
     _truncate(os.path.join(url, "codes", dict_id, "vib", "value", "c", "3", "0"))
-    pp = pool.prepare_pool(url, "vib", dict_id, regions=2, overwrite=True)
-    result = pool.pool_chunks(url, "vib", dict_id, pp["pending"], on_bad_chunk="skip")
+    pp = pool.prepare_pool(url, "vib", dict_id, overwrite=True, options=PoolOptions(regions=2))
+    result = pool.pool_chunks(url, "vib", dict_id, pp["pending"], options=PoolOptions(on_bad_chunk="skip"))
     assert result["bad"] == 1 and result["pooled"] == 7
-    again = pool.prepare_pool(url, "vib", dict_id, regions=2)
+    again = pool.prepare_pool(url, "vib", dict_id, options=PoolOptions(regions=2))
     assert again["pending"] == [] and again["skipped_rows"] == 20
-    report = evaluate.evaluate_features(url, "vib", dict_id, baselines=(), learning_curve=())
+    report = evaluate.evaluate_features(url, "vib", dict_id, options=EvaluateOptions(baselines=(), learning_curve=()))
     assert report["rows_lacking"] == 20 and report["n_rows"] == 140
 
 
@@ -223,8 +223,8 @@ def test_corrupt_features_chunk_named_by_evaluate_or_left_out(pooled):
     _truncate(os.path.join(url, "features", dict_id, "vib", "values", "c", "2", "0"))
     options = dict(baselines=(), learning_curve=())
     with pytest.raises(BadChunk, match=rf"features/{dict_id}/vib/values, chunk 2 \(rows 40\.\.59\)"):
-        evaluate.evaluate_features(url, "vib", dict_id, **options)
-    report = evaluate.evaluate_features(url, "vib", dict_id, on_bad_chunk="skip", **options)
+        evaluate.evaluate_features(url, "vib", dict_id, EvaluateOptions(**options))
+    report = evaluate.evaluate_features(url, "vib", dict_id, EvaluateOptions(**options, on_bad_chunk="skip"))
     assert report["rows_lacking"] == 20 and report["n_rows"] == 140
 
 

@@ -23,6 +23,7 @@ from conftest import store_snapshot
 
 from atomline.stages import encode, evaluate, pool, train
 from atomline.stages.workspace import Workspace
+from atomline.stages.options import PoolOptions, TrainOptions
 
 pytestmark = pytest.mark.slow
 
@@ -93,14 +94,14 @@ def still_alive(processes: dict) -> list[int]:
 
 def run_stage(url: str, stage: str) -> dict:
     """The stage sequences the matrix kills (shared by the children and the reruns)."""
-    dict_id = train.train_dictionary(url, "vib", **TRAIN)["dict_id"]
+    dict_id = train.train_dictionary(url, "vib", TrainOptions(**TRAIN))["dict_id"]
     if stage == "train":
         return {"dict_id": dict_id}
     if stage in ("encode", "nightly"):
         p = encode.prepare_encode(url, "vib", dict_id)
         encode.encode_chunks(url, "vib", dict_id, p["pending"])
     if stage in ("pool", "nightly"):
-        p = pool.prepare_pool(url, "vib", dict_id, regions=2)
+        p = pool.prepare_pool(url, "vib", dict_id, options=PoolOptions(regions=2))
         pool.pool_chunks(url, "vib", dict_id, p["pending"])
     if stage in ("evaluate", "nightly"):
         run_id = evaluate.evaluate_features(url, "vib", dict_id)["run_id"]

@@ -21,6 +21,7 @@ from atomline.flows.runners import task_runner
 from atomline.stages import encode, pool
 from atomline.stages.errors import InputError, LayoutError, NotFound
 from atomline.stages.workspace import STORAGE_OPTIONS_ENV, Workspace, resolve_storage_options
+from atomline.stages.options import PoolOptions, TrainOptions
 
 NIGHTLY = dict(n_atoms=32, patch_size=64, stride=32, sample_patches=3000, regions=2,
                coder_options={"n_nonzero": 4}, workers=2, learning_curve=[], n_boot=200,
@@ -63,7 +64,7 @@ def _reference_encode(X, y, stored, chunk_rows: int, regions: int) -> dict[str, 
     ws.save_dictionary(stored.dict_id, stored.atoms, meta, stored.arrays)
     prepared = encode.prepare_encode(ws, "vib", stored.dict_id)
     encode.encode_chunks(ws, "vib", stored.dict_id, prepared["pending"])
-    pooled = pool.prepare_pool(ws, "vib", stored.dict_id, regions=regions)
+    pooled = pool.prepare_pool(ws, "vib", stored.dict_id, options=PoolOptions(regions=regions))
     pool.pool_chunks(ws, "vib", stored.dict_id, pooled["pending"])
     return _arrays(ws, stored.dict_id, "vib")
 
@@ -207,8 +208,7 @@ def test_outputs_refuse_records_that_were_replaced(memory_url, demo_small):
     X, y = demo_small
     ws = Workspace.open(memory_url, create=True)
     ws.add_records("vib", X[:200], chunk_rows=50)
-    dict_id = train.train_dictionary(ws, "vib", n_atoms=16, patch_size=64, stride=64,
-                                     sample_patches=1000)["dict_id"]
+    dict_id = train.train_dictionary(ws, "vib", options=TrainOptions(n_atoms=16, patch_size=64, stride=64, sample_patches=1000))["dict_id"]
     prepared = encode.prepare_encode(ws, "vib", dict_id)
     encode.encode_chunks(ws, "vib", dict_id, prepared["pending"])
     ws.add_records("vib", X[200:400], chunk_rows=50, overwrite=True)  # other rows, same name
@@ -276,8 +276,7 @@ def test_failed_batch_is_retried_and_resumes_at_chunk_level(demo_small, memory_u
     X, y = demo_small
     ws = Workspace.open(memory_url, create=True)
     ws.add_records("vib", X[:240], chunk_rows=40)
-    dict_id = train.train_dictionary(ws, "vib", n_atoms=16, patch_size=64, stride=64,
-                                     sample_patches=1000)["dict_id"]
+    dict_id = train.train_dictionary(ws, "vib", options=TrainOptions(n_atoms=16, patch_size=64, stride=64, sample_patches=1000))["dict_id"]
     real = encode.code
     calls = {"n": 0}
 

@@ -18,6 +18,7 @@ from atomline.stages import encode, train
 from atomline.stages.workspace.leases import LeaseInfo, _LeaseStore
 from atomline.stages.errors import LeaseHeld
 from atomline.stages.workspace import Workspace
+from atomline.stages.options import TrainOptions
 
 TRAIN = dict(n_atoms=16, patch_size=128, stride=128, sample_patches=1000, seed=0,
              coder_options={"n_nonzero": 3})
@@ -108,7 +109,7 @@ def test_explicit_break_keeps_finished_chunks(tmp_path, demo_small):
     X, y = demo_small
     ws = Workspace.open(str(tmp_path / "ws.zarr"), create=True)
     ws.add_records("vib", X[:120], chunk_rows=20)
-    dict_id = train.train_dictionary(ws, "vib", **TRAIN)["dict_id"]
+    dict_id = train.train_dictionary(ws, "vib", TrainOptions(**TRAIN))["dict_id"]
     path = encode.codes_path(dict_id, "vib")
     first = encode.prepare_encode(ws, "vib", dict_id)
     encode.encode_chunks(ws, "vib", dict_id, first["pending"][:2])
@@ -157,8 +158,7 @@ def test_two_concurrent_runs_one_refused_data_intact(tmp_path, demo_small, capsy
     url = str(tmp_path / "ws.zarr")
     ws = Workspace.open(url, create=True)
     ws.add_records("vib", X, chunk_rows=2)  # 300 chunks: long enough to overlap a second run
-    dict_id = train.train_dictionary(ws, "vib", n_atoms=32, patch_size=128, stride=64,
-                                     sample_patches=2000, seed=2)["dict_id"]
+    dict_id = train.train_dictionary(ws, "vib", options=TrainOptions(n_atoms=32, patch_size=128, stride=64, sample_patches=2000, seed=2))["dict_id"]
     ws.promote(dict_id)
     ref_url = str(tmp_path / "reference.zarr")
     shutil.copytree(url, ref_url)
@@ -197,7 +197,7 @@ def test_cli_break_lease_flag(tmp_path, demo_small, capsys):
     url = str(tmp_path / "ws.zarr")
     ws = Workspace.open(url, create=True)
     ws.add_records("vib", X[:80], chunk_rows=20)
-    dict_id = train.train_dictionary(ws, "vib", **TRAIN)["dict_id"]
+    dict_id = train.train_dictionary(ws, "vib", TrainOptions(**TRAIN))["dict_id"]
     ws.promote(dict_id)
     path = encode.codes_path(dict_id, "vib")
     _plant(ws, path, host="elsewhere", pid=1, age=0, ttl=3600, run="stuck run")
@@ -234,7 +234,7 @@ def test_lease_records_the_holder_process_start_so_a_reused_pid_counts_as_dead(w
 def _encode_ready(ws_url: str, X, rows: int = 80, chunk_rows: int = 10):
     ws = Workspace.open(ws_url, create=True)
     ws.add_records("vib", X[:rows], chunk_rows=chunk_rows)
-    dict_id = train.train_dictionary(ws, "vib", **TRAIN)["dict_id"]
+    dict_id = train.train_dictionary(ws, "vib", TrainOptions(**TRAIN))["dict_id"]
     prepared = encode.prepare_encode(ws, "vib", dict_id)
     return ws, dict_id, prepared
 
@@ -384,7 +384,7 @@ def test_training_that_lost_its_lease_stores_no_dictionary(tmp_path, demo_small,
 
     monkeypatch.setattr(train, "learn", learn_while_another_run_takes_the_lease)
     with pytest.raises(LeaseLost, match="second trainer"):
-        train.train_dictionary(ws, "vib", **TRAIN)
+        train.train_dictionary(ws, "vib", TrainOptions(**TRAIN))
     assert ws.dictionary_ids() == []
 
 

@@ -21,6 +21,7 @@ from atomline.stages import encode, evaluate, pool, train
 from atomline.stages.errors import (FingerprintMismatch, InputError, LayoutError, NotFound,
                                     UnsafeStore)
 from atomline.stages.workspace import LAYOUT_VERSION, Workspace
+from atomline.stages.options import EncodeOptions, EvaluateOptions, PoolOptions, TrainOptions
 
 TRAIN = dict(n_atoms=16, patch_size=128, stride=128, sample_patches=1000, seed=0,
              coder_options={"n_nonzero": 3})
@@ -39,10 +40,10 @@ def finished(tmp_path_factory, demo_small):
     ws.add_labels("other", y[:50])
     ws.add_records("mono", np.ones((160, 8), np.float32))
     ws.add_labels("mono", np.zeros(160, dtype=int))
-    dict_id = train.train_dictionary(ws, "vib", **TRAIN)["dict_id"]
+    dict_id = train.train_dictionary(ws, "vib", TrainOptions(**TRAIN))["dict_id"]
     prepared = encode.prepare_encode(ws, "vib", dict_id)
     encode.encode_chunks(ws, "vib", dict_id, prepared["pending"])
-    pooled = pool.prepare_pool(ws, "vib", dict_id, regions=2)
+    pooled = pool.prepare_pool(ws, "vib", dict_id, options=PoolOptions(regions=2))
     pool.pool_chunks(ws, "vib", dict_id, pooled["pending"])
     run_id = evaluate.evaluate_features(ws, "vib", dict_id)["run_id"]
     ws.promote(dict_id, evaluation=run_id)
@@ -89,8 +90,7 @@ BAD = [
      InputError, "chunk numbers 0..3"),
     ("pool-chunk-out-of-range", lambda ws, d, r, t: pool.pool_chunks(ws, "vib", d, [-1]),
      InputError, "chunk numbers 0..3"),
-    ("coder-option-unknown", lambda ws, d, r, t: encode.prepare_encode(
-        ws, "vib", d, coder_options={"encoder": "mine"}), InputError, "unknown ['encoder']"),
+    ("coder-option-unknown", lambda ws, d, r, t: encode.prepare_encode(ws, "vib", d, options=EncodeOptions(coder_options={"encoder": "mine"})), InputError, "unknown ['encoder']"),
     ("labels-wrong-length", lambda ws, d, r, t: ws.add_labels("vib", np.zeros(159, int), overwrite=True),
      InputError, "160 labels"),
     ("labels-not-integer", lambda ws, d, r, t: ws.add_labels("vib", np.zeros(160), overwrite=True),
@@ -106,19 +106,17 @@ BAD = [
      NotFound, "data/absent"),
     ("dictionary-of-other-width", lambda ws, d, r, t: encode.prepare_encode(ws, "other", d),
      InputError, "records shaped"),
-    ("codes-from-other-parameters", lambda ws, d, r, t: encode.prepare_encode(
-        ws, "vib", d, coder="omp", coder_options={"n_nonzero": 2}), FingerprintMismatch, "overwrite"),
+    ("codes-from-other-parameters", lambda ws, d, r, t: encode.prepare_encode(ws, "vib", d, options=EncodeOptions(coder="omp", coder_options={"n_nonzero": 2})), FingerprintMismatch, "overwrite"),
     ("unknown-dictionary", lambda ws, d, r, t: encode.prepare_encode(ws, "vib", "d-unknown"),
      NotFound, "dictionaries/d-unknown"),
-    ("bad-chunk-choice", lambda ws, d, r, t: encode.encode_chunks(ws, "vib", d, [0], on_bad_chunk="ignore"),
+    ("bad-chunk-choice", lambda ws, d, r, t: encode.encode_chunks(ws, "vib", d, [0], options=EncodeOptions(on_bad_chunk="ignore")),
      InputError, "on_bad_chunk"),
-    ("pool-bad-chunk-choice", lambda ws, d, r, t: pool.pool_chunks(ws, "vib", d, [0], on_bad_chunk="ignore"),
+    ("pool-bad-chunk-choice", lambda ws, d, r, t: pool.pool_chunks(ws, "vib", d, [0], options=PoolOptions(on_bad_chunk="ignore")),
      InputError, "on_bad_chunk"),
-    ("evaluate-bad-chunk-choice", lambda ws, d, r, t: evaluate.evaluate_features(
-        ws, "vib", d, on_bad_chunk="ignore"), InputError, "on_bad_chunk"),
-    ("too-few-samples", lambda ws, d, r, t: train.train_dictionary(ws, "vib", n_atoms=64, sample_patches=10),
+    ("evaluate-bad-chunk-choice", lambda ws, d, r, t: evaluate.evaluate_features(ws, "vib", d, options=EvaluateOptions(on_bad_chunk="ignore")), InputError, "on_bad_chunk"),
+    ("too-few-samples", lambda ws, d, r, t: train.train_dictionary(ws, "vib", options=TrainOptions(n_atoms=64, sample_patches=10)),
      InputError, "sample_patches"),
-    ("too-many-regions", lambda ws, d, r, t: pool.prepare_pool(ws, "vib", d, regions=99),
+    ("too-many-regions", lambda ws, d, r, t: pool.prepare_pool(ws, "vib", d, options=PoolOptions(regions=99)),
      InputError, "regions"),
     ("labels-of-other-records", lambda ws, d, r, t: evaluate.evaluate_features(ws, "vib", d, labels="other"),
      InputError, "160 labels"),
@@ -323,7 +321,7 @@ WRONG_TYPES = [
      lambda a, d: a.__setitem__("patches_per_record", "16"),
      lambda ws, d, r: ws.output(f"codes/{d}/vib"), "'patches_per_record'"),
     ("features-params-missing", "features/{d}/vib/zarr.json", lambda a, d: a.pop("params"),
-     lambda ws, d, r: pool.prepare_pool(ws, "vib", d, regions=2), "'params'"),
+     lambda ws, d, r: pool.prepare_pool(ws, "vib", d, options=PoolOptions(regions=2)), "'params'"),
     ("evaluation-metrics-a-string", "evaluations/{r}/zarr.json", lambda a, d: a.__setitem__("metrics", "good"),
      lambda ws, d, r: ws.evaluation(r), "'metrics'"),
 ]
@@ -375,7 +373,7 @@ def test_chunk_file_replaced_by_a_link_refused_naming_it(copy_of, on_bad_chunk):
     path = encode.codes_path(dict_id, "vib")
     # Refused, not a bad chunk to skip: a link is never read as data.
     with pytest.raises(UnsafeStore, match="data/vib/c/1/0"):
-        encode.encode_chunks(ws, "vib", dict_id, [1], on_bad_chunk=on_bad_chunk)
+        encode.encode_chunks(ws, "vib", dict_id, [1], options=EncodeOptions(on_bad_chunk=on_bad_chunk))
     assert ws.output(path).pending() == [0, 1, 2, 3]
 
 
@@ -386,10 +384,9 @@ def test_coder_options_given_are_merged_into_the_dictionarys(copy_of):
     ws = Workspace.open(str(root))
     trained = ws.load_dictionary(dict_id).attrs["coder_options"]
     assert trained == {"n_nonzero": 3}
-    got = encode.prepare_encode(ws, "vib", dict_id, coder_options={"tol": 1e-6}, overwrite=True)
+    got = encode.prepare_encode(ws, "vib", dict_id, overwrite=True, options=EncodeOptions(coder_options={"tol": 1e-6}))
     assert got["coder"] == "omp" and got["coder_options"] == {"n_nonzero": 3, "tol": 1e-6}
-    got = encode.prepare_encode(ws, "vib", dict_id, coder="omp", coder_options={"n_nonzero": 2},
-                                overwrite=True)
+    got = encode.prepare_encode(ws, "vib", dict_id, overwrite=True, options=EncodeOptions(coder="omp", coder_options={"n_nonzero": 2}))
     assert got["coder_options"] == {"n_nonzero": 2}  # a given option replaces its own name only
 
 
