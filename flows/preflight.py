@@ -22,8 +22,8 @@ from atomline.stages.checks import (check_curve, check_folds, check_record_shape
                                     check_sample_size, check_tolerance, check_workers,
                                     promoted_or_named, resolve_coder)
 from atomline.stages.errors import InputError, problem
-from atomline.stages.kernels.learning import (TRAIN_CODER_OPTIONS, TRAIN_OWN_OPTIONS, check_learner,
-                                      check_learner_options, takes_coder)
+from atomline.stages.kernels.learning import (TRAIN_OWN_OPTIONS, check_learner, check_learner_options,
+                                              default_coder_options, takes_coder)
 from atomline.stages.kernels.prep import PatchGeometry
 from atomline.stages.workspace import Workspace
 
@@ -50,7 +50,7 @@ def check_train(workspace: str, records: str, *, n_atoms: int, patch_size: Any, 
     check_sample_size(sample_patches, n_atoms)
     geometry = PatchGeometry.for_records(shape[1:], _tuple(patch_size), _tuple(stride))
     if takes_coder(method):
-        _check_coder(coder, n_atoms, TRAIN_CODER_OPTIONS if coder_options is None else coder_options)
+        _check_coder(coder, n_atoms, default_coder_options(coder, coder_options))
     return geometry
 
 

@@ -62,6 +62,12 @@ Methods and their options
 
 The lasso objective is ``½‖x − Wᵀz‖² + lam·‖z‖₁`` with ``W`` the atoms (k, d).
 
+Every coder is one :class:`Coder` record in :data:`METHODS`: its function, a help line
+per option and the values of the options it requires that learners and the train stage
+fill in when not given (:func:`default_options`); :func:`option_table` lists, per coder,
+``(name, default, type, help)`` of each option (the options' names, defaults and types
+are the function's keyword-only parameters).
+
 Helpers
 -------
 :func:`code_width` gives the slots per row a coder returns from its options alone (for
@@ -82,7 +88,8 @@ fixed block shape so that a row's result never depends on the other rows of its 
 
 from __future__ import annotations
 
-from typing import Any, Callable
+from dataclasses import dataclass, field
+from typing import Any, Callable, Mapping
 
 import numpy as np
 
@@ -92,8 +99,8 @@ from ._numba_cache import use_user_cache_dir
 # Before any kernel is decorated: the decorator picks the cache location.
 use_user_cache_dir()
 
-from ._common import (SparseCodes, check_problem, gram, keyword_options,  # noqa: E402
-                      refuse_unknown_options)
+from .._records import Option, keyword_options, option_list, refuse_unknown_options  # noqa: E402
+from ._common import SparseCodes, check_problem, gram  # noqa: E402
 from .block_omp import block_omp, block_omp_width
 from .cosamp import cosamp, cosamp_width
 from .fista import fista
@@ -112,6 +119,10 @@ __all__ = [
     "code",
     "code_width",
     "code_outputs",
+    "default_options",
+    "option_table",
+    "Coder",
+    "Option",
     "METHODS",
     "SparseCodes",
     "gram",
@@ -120,37 +131,122 @@ __all__ = [
     "lambda_for_sparsity",
 ]
 
-#: Coders by their trade name. Each takes validated ``(X, atoms, **options)``.
-METHODS: dict[str, Callable[..., SparseCodes]] = {
-    "mp": mp,
-    "omp": omp,
-    "ormp": ormp,
-    "cosamp": cosamp,
-    "lars": lars,
-    "ista": ista,
-    "fista": fista,
-    "threshold": threshold,
-    "triangle": triangle,
-    "hard": hard,
-    "block-omp": block_omp,
-    "learned": learned,
-}
 
-#: Slots per row each coder returns, from ``(n_atoms, **options)``.
-_WIDTHS: dict[str, Callable[..., int]] = {
-    "mp": mp_width,
-    "omp": omp_width,
-    "ormp": ormp_width,
-    "cosamp": cosamp_width,
-    "lars": lasso_width,
-    "ista": lasso_width,
-    "fista": lasso_width,
-    "threshold": threshold_width,
-    "triangle": triangle_width,
-    "hard": hard_width,
-    "block-omp": block_omp_width,
-    "learned": learned_width,
-}
+@dataclass(frozen=True)
+class Coder:
+    """One coder: its function, its options and what a caller that names none gets.
+
+    Attributes
+    ----------
+    name : str
+        Trade name (the key of :data:`METHODS`).
+    run : callable
+        ``run(X, atoms, **options) -> SparseCodes`` on validated arrays.
+    width : callable
+        ``width(n_atoms, **options) -> int``: slots per row (see :func:`code_width`).
+    help : str
+        One line saying what the coder does.
+    option_help : mapping of str to str
+        One line per option (every keyword-only parameter of ``run``).
+    defaults : mapping
+        Values for the options ``run`` requires (such as ``n_nonzero``), filled in where
+        a learner or the train stage is not given them; ``code`` itself takes options
+        as given.
+    in_learner : bool
+        Whether a learner may code its batches with it (not when it needs state
+        trained for fixed atoms, as ``learned`` does).
+    """
+
+    name: str
+    run: Callable[..., SparseCodes]
+    width: Callable[..., int]
+    help: str
+    option_help: Mapping[str, str]
+    defaults: Mapping[str, Any] = field(default_factory=dict)
+    in_learner: bool = True
+
+    def __post_init__(self) -> None:
+        option_list(self.run, self.option_help, self.defaults)  # refuses a record out of step
+
+    @property
+    def options(self) -> tuple[Option, ...]:
+        """``(name, default, type, help)`` of every option, sorted by name."""
+        return option_list(self.run, self.option_help, self.defaults)
+
+    @property
+    def uses_gram(self) -> bool:
+        """Whether ``run`` accepts a precomputed Gram matrix (option ``gram``)."""
+        return "gram" in self.option_help
+
+
+_GRAM = "Precomputed Gram matrix of the atoms (k, k); computed from the atoms if not given."
+_N_NONZERO = "Distinct atoms per row at most (the sparsity)."
+_TOL = "Stop a row once its residual energy is at most tol times its energy."
+_LAM = "Weight of the l1 penalty in ½‖x − Wᵀz‖² + lam·‖z‖₁."
+_POSITIVE = "Keep every coefficient nonnegative."
+_MAX_NONZERO = "Keep at most this many nonzeros per row (largest magnitudes); default k."
+_GREEDY = {"n_nonzero": 5}  # a handful of atoms per row: the regime the greedy coders suit
+# Rows are at unit contrast after the default preprocessing (mean square about 1); a
+# tenth of that keeps a few atoms per row. lambda_for_sparsity picks lam for a target.
+_LASSO = {"lam": 0.1}
+_PROXIMAL = {"lam": _LAM, "positive": _POSITIVE,
+             "init": "Warm-start codes (SparseCodes or dense (n_rows, k)).",
+             "max_iter": "Iterations per row at most.",
+             "gap_tol": "Stop a row once its relative duality gap is at most this.",
+             "max_nonzero": _MAX_NONZERO, "gram": _GRAM}
+
+#: Coders by their trade name.
+METHODS: dict[str, Coder] = {c.name: c for c in (
+    Coder("mp", mp, mp_width, "Matching pursuit.",
+          {"n_nonzero": _N_NONZERO, "tol": _TOL,
+           "max_steps": "Pursuit steps at most (an atom may be picked again).", "gram": _GRAM},
+          _GREEDY),
+    Coder("omp", omp, omp_width, "Orthogonal matching pursuit.",
+          {"n_nonzero": _N_NONZERO, "tol": _TOL, "gram": _GRAM}, _GREEDY),
+    Coder("ormp", ormp, ormp_width, "Order-recursive matching pursuit.",
+          {"n_nonzero": _N_NONZERO, "tol": _TOL, "gram": _GRAM}, _GREEDY),
+    Coder("cosamp", cosamp, cosamp_width, "Compressive sampling matching pursuit.",
+          {"n_nonzero": _N_NONZERO, "tol": _TOL, "max_iter": "Iterations per row at most.",
+           "gram": _GRAM}, _GREEDY),
+    Coder("lars", lars, lasso_width, "Exact lasso by the LARS homotopy.",
+          {"lam": _LAM, "positive": _POSITIVE, "max_nonzero": _MAX_NONZERO, "gram": _GRAM},
+          _LASSO),
+    Coder("ista", ista, lasso_width, "Proximal gradient for the lasso.", _PROXIMAL, _LASSO),
+    Coder("fista", fista, lasso_width,
+          "Proximal gradient for the lasso with momentum and adaptive restart.",
+          _PROXIMAL, _LASSO),
+    Coder("threshold", threshold, threshold_width, "Soft threshold of the correlations W x.",
+          {"alpha": "Offset subtracted from the correlations' magnitudes.",
+           "split_sign": "Output the positive and negative parts as separate atoms (2k)."}),
+    Coder("triangle", triangle, triangle_width, "The k-means triangle activation.", {}),
+    Coder("hard", hard, hard_width, "Hard assignment to the nearest atom.", {}),
+    Coder("block-omp", block_omp, block_omp_width,
+          "Block OMP over consecutive groups of atoms.",
+          {"group_size": "Atoms per group (a divisor of k).",
+           "n_groups": "Active groups per row at most.", "tol": _TOL, "gram": _GRAM},
+          {"group_size": 2, "n_groups": 2}),
+    Coder("learned", learned, learned_width,
+          "Unrolled trained ISTA; its encoder is trained for one dictionary.",
+          {"encoder": "A LearnedEncoder from fit_learned_encoder for these atoms.",
+           "max_nonzero": _MAX_NONZERO}, in_learner=False),
+)}
+
+
+def option_table() -> dict[str, list[Option]]:
+    """Every coder's options: ``{coder: [(name, default, type, help), ...]}``.
+
+    ``default`` is the signature's default or, for an option the coder requires, the
+    record's :attr:`Coder.defaults` value
+    (:data:`~atomline.stages.kernels._records.REQUIRED` when it must always be given).
+    """
+    return {name: list(c.options) for name, c in sorted(METHODS.items())}
+
+
+def default_options(method: str) -> dict:
+    """The record's :attr:`Coder.defaults` of ``method`` (a new dict)."""
+    if method not in METHODS:
+        raise _unknown(method)
+    return dict(METHODS[method].defaults)
 
 
 def _unknown(method: str) -> InputError:
@@ -166,7 +262,8 @@ def _bad_options(method: str, exc: TypeError) -> InputError:
 def _check_option_names(method: str, options: dict) -> None:
     """Refuse option names the coder does not take, listing those it does (every coder's
     options are keyword-only parameters, so its signature is the list)."""
-    refuse_unknown_options(f"coder {method!r}", options, keyword_options(METHODS[method]), "--coder")
+    refuse_unknown_options(f"coder {method!r}", options, keyword_options(METHODS[method].run),
+                           "--coder")
 
 
 def code(X: np.ndarray, atoms: np.ndarray, method: str = "omp", **options: Any) -> SparseCodes:
@@ -198,7 +295,7 @@ def code(X: np.ndarray, atoms: np.ndarray, method: str = "omp", **options: Any) 
         raise _unknown(method)
     X, atoms = check_problem(X, atoms)
     try:
-        return METHODS[method](X, atoms, **options)
+        return METHODS[method].run(X, atoms, **options)
     except TypeError as exc:  # unknown or missing keyword: say which method wanted what
         raise _bad_options(method, exc) from exc
 
@@ -224,11 +321,11 @@ def code_width(method: str, n_atoms: int, **options: Any) -> int:
         Slots per row (greedy: ``n_nonzero``; lasso: ``max_nonzero`` or ``k``;
         threshold: ``k`` or ``2k`` with ``split_sign``; hard: 1; ...).
     """
-    if method not in _WIDTHS:
+    if method not in METHODS:
         raise _unknown(method)
     _check_option_names(method, options)
     try:
-        return int(_WIDTHS[method](int(n_atoms), **options))
+        return int(METHODS[method].width(int(n_atoms), **options))
     except TypeError as exc:
         raise _bad_options(method, exc) from exc
 

@@ -9,7 +9,6 @@ which is how a per-row algorithm runs at the speed of the hardware.
 
 from __future__ import annotations
 
-import inspect
 from dataclasses import dataclass
 
 import numpy as np
@@ -223,25 +222,6 @@ def lipschitz(atoms: np.ndarray) -> float:
     small = product(A.T, A) if A.shape[1] < A.shape[0] else product(A, A.T)
     top = top_eigenvalue_bound(small)
     return top if top > 0 else 1.0
-
-
-def keyword_options(fn, leave_out: tuple[str, ...] = ()) -> list[str]:
-    """The keyword-only parameters of ``fn``, sorted: how every coder and every learner
-    declares its options (``leave_out``: those its caller wires in itself)."""
-    params = inspect.signature(fn).parameters
-    return sorted(n for n, p in params.items()
-                  if p.kind is inspect.Parameter.KEYWORD_ONLY and n not in leave_out)
-
-
-def refuse_unknown_options(what: str, options: dict, known: list[str], flag: str) -> None:
-    """Refuse option names outside ``known``, listing them (``what``: e.g. "coder 'omp'";
-    ``flag``: the command-line option that picks the method, e.g. ``--coder``)."""
-    unknown = sorted(set(options) - set(known))
-    if unknown:
-        raise InputError(problem(f"options of {what}", f"option names among {known}",
-                                 f"unknown {unknown}",
-                                 f"Check the spelling, or choose the method these options "
-                                 f"belong to ({flag})."))
 
 
 def positive_int(name: str, value: object, allow_zero: bool = False) -> int:

@@ -30,22 +30,25 @@ Methods
     Uniformly drawn training rows, normalised: the baseline dictionary.
 
 Every learner takes an in-memory array or an iterable of mini-batches, a ``seed``,
-and ``checkpoint`` / ``checkpoint_every`` / ``resume`` (see :func:`learn`).
+and ``checkpoint`` / ``checkpoint_every`` / ``resume`` (see :func:`learn`). Each is one
+:class:`Method` record in :data:`METHODS`; :func:`option_table` lists, per learner,
+``(name, default, type, help)`` of each option.
 """
 
 from __future__ import annotations
 
-import inspect
 import json
 from collections.abc import Iterator
-from typing import Any, Callable, Iterable
+from dataclasses import dataclass
+from typing import Any, Callable, Iterable, Mapping
 
 import numpy as np
 
 from ...errors import InputError, problem
-from ..coding._common import keyword_options, refuse_unknown_options
+from .._records import Option, keyword_options, option_list, refuse_unknown_options
 from ..prep import Normaliser
-from ._common import LearnedDictionary, as_rows, atom_usage, coded, residual_energy
+from ._common import (LearnedDictionary, as_rows, atom_usage, coded, default_coder_options,
+                      residual_energy)
 from .batch import batch, batch_statistics, batch_update, combine_statistics
 from .kmeans import kmeans
 from .online import online
@@ -59,11 +62,14 @@ __all__ = [
     "learn",
     "check_learner",
     "check_learner_options",
+    "default_coder_options",
     "learner_option_names",
+    "option_table",
     "takes_coder",
-    "TRAIN_CODER_OPTIONS",
     "TRAIN_OWN_OPTIONS",
     "METHODS",
+    "Method",
+    "Option",
     "LearnedDictionary",
     "reservoir_sample",
     "batch_statistics",
@@ -71,17 +77,111 @@ __all__ = [
     "batch_update",
 ]
 
-#: Learners by their trade name. Each takes ``(source, n_atoms, **options)``.
-METHODS: dict[str, Callable[..., LearnedDictionary]] = {
-    "online": online,
-    "sgd": sgd,
-    "averaged-sgd": averaged_sgd,
-    "batch": batch,
-    "pca": pca,
-    "kmeans": kmeans,
-    "subspaces": subspaces,
-    "random-patches": random_patches,
+#: Parameters of every learner that :func:`learn` sets itself, not options of the caller's.
+_WIRED = ("checkpoint", "resume")
+
+
+@dataclass(frozen=True)
+class Method:
+    """One learner: its function, its options and their help.
+
+    Attributes
+    ----------
+    name : str
+        Trade name (the key of :data:`METHODS`).
+    run : callable
+        ``run(source, n_atoms, *, checkpoint, resume, **options) -> LearnedDictionary``;
+        its other keyword-only parameters are its options (names, defaults, types).
+    help : str
+        One line saying what the learner does.
+    option_help : mapping of str to str
+        The help of the options not in :data:`_SHARED_HELP`, or where the shared line
+        does not fit.
+    """
+
+    name: str
+    run: Callable[..., LearnedDictionary]
+    help: str
+    option_help: Mapping[str, str]
+
+    def __post_init__(self) -> None:
+        self.options  # refuses a record out of step with its function
+
+    @property
+    def options(self) -> tuple[Option, ...]:
+        """``(name, default, type, help)`` of every option, sorted by name."""
+        names = keyword_options(self.run, leave_out=_WIRED)
+        shared = {n: _SHARED_HELP[n] for n in names if n in _SHARED_HELP}
+        return option_list(self.run, {**shared, **self.option_help}, leave_out=_WIRED)
+
+    @property
+    def takes_coder(self) -> bool:
+        """Whether it codes its batches with a coder the caller picks.
+
+        pca, kmeans and subspaces fix their own coder (recorded in the result's params).
+        """
+        return "coder" in keyword_options(self.run)
+
+
+#: Help of the options several learners share, written once.
+_SHARED_HELP = {
+    "coder": "Coder of the mini-batches (a name of atomline.stages.kernels.coding.METHODS).",
+    "coder_options": "Its options; those it requires default to the coder's own defaults.",
+    "batch_size": "Rows per mini-batch (larger stream batches are cut to this size).",
+    "n_passes": "Passes over an in-memory source.",
+    "forget": "Factor on the accumulated statistics before each batch; default about one "
+              "pass of memory in memory over several passes, else 1.",
+    "replace_every": "Batches between checks for unused or duplicate atoms; 0 never replaces.",
+    "dead_share": "An atom used by fewer than this share of the mean usage in a window is "
+                  "replaced.",
+    "duplicate_cos": "Two atoms with |cos| above this are duplicates (the later is replaced).",
+    "seed": "Seeds the shuffling and the initial atoms.",
+    "init": "Starting atoms (n_atoms, d); by default distinct training rows.",
+    "checkpoint_every": "Source batches between checkpoints.",
 }
+
+#: Learners by their trade name.
+METHODS: dict[str, Method] = {m.name: m for m in (
+    Method("online", online, "Mini-batch learning with accumulated statistics and "
+           "block-coordinate atom updates.",
+           {"warmup": "Exponent of the (1 − 1/t) down-weighting of past statistics; 0 keeps "
+                      "them all.",
+            "n_sweeps": "Block-coordinate sweeps over the atoms per batch."}),
+    Method("sgd", sgd, "Projected stochastic gradient on the atoms.",
+           {"step": "Step size in units of 1/L, L the batch gradient's Lipschitz constant.",
+            "step_decay_batches": "Batches τ of the step's decay step / sqrt(1 + t/τ)."}),
+    Method("averaged-sgd", averaged_sgd,
+           "Projected stochastic gradient returning the weighted average of its iterates.",
+           {"step": "Step size in units of 1/L, L the batch gradient's Lipschitz constant.",
+            "step_decay_batches": "Batches τ of the step's decay step / sqrt(1 + t/τ).",
+            "average_decay": "c of the iterate averaging weights (1 + c) / (t + c)."}),
+    Method("batch", batch, "Alternating minimisation over the whole sample, one pass per "
+           "iteration.",
+           {"n_passes": "Iterations, each one full pass.",
+            "chunk_size": "Rows per chunk for an in-memory source.",
+            "n_sweeps": "Block-coordinate sweeps over the atoms per iteration.",
+            "dead_share": "An atom used by fewer than this share of the mean usage in a pass "
+                          "is replaced.",
+            "seed": "Seeds the initial atoms (drawn rows).",
+            "checkpoint_every": "Passes between checkpoints."}),
+    Method("pca", pca, "The k ≤ d leading principal directions (orthonormal atoms).",
+           {"center": "Remove the rows' mean before the eigen-decomposition.",
+            "batch_size": "Rows per batch for an in-memory source.",
+            "seed": "Unused by the computation (recorded like the other learners')."}),
+    Method("kmeans", kmeans, "Spherical k-means, mini-batch: each row is coded by its "
+           "best-matching atom.",
+           {"forget": "Factor on the cluster sums before each batch; default as online's."}),
+    Method("subspaces", subspaces, "k-subspaces: n_atoms / block_size blocks of orthonormal "
+           "atoms, one subspace each.",
+           {"block_size": "Dimension of each subspace (a divisor of n_atoms, at most d).",
+            "replace_every": "Batches between re-seeding blocks no row used; 0 never does.",
+            "forget": "Factor on the scatters before each batch; default as online's."}),
+    Method("random-patches", random_patches, "Uniformly drawn training rows, normalised: the "
+           "baseline dictionary.",
+           {"coder": "The coder the atoms are meant for (recorded; used for the diagnostics).",
+            "batch_size": "Rows per batch for an in-memory source.",
+            "seed": "Seeds the draw."}),
+)}
 
 #: Most rows coded to measure the training error.
 _PROBE_MAX = 10_000
@@ -90,11 +190,17 @@ _PROBE_PIECE = 2048
 #: Prefix of the entries :func:`learn` adds to a learner's checkpoint state.
 _OWN = "learn."
 
-
-#: Options of the coder inside a learner when the caller gives none (the train stage's default).
-TRAIN_CODER_OPTIONS = {"n_nonzero": 5}
 #: Learner options the train stage sets from its own arguments, so not taken as learner options.
 TRAIN_OWN_OPTIONS = ("seed", "coder", "coder_options")
+
+
+def option_table() -> dict[str, list[Option]]:
+    """Every learner's options: ``{method: [(name, default, type, help), ...]}``.
+
+    ``coder_options`` defaults to ``None``: the coder's own defaults
+    (:func:`atomline.stages.kernels.coding.option_table`).
+    """
+    return {name: list(m.options) for name, m in sorted(METHODS.items())}
 
 
 def check_learner(method: str, n_atoms: int) -> None:
@@ -107,18 +213,11 @@ def check_learner(method: str, n_atoms: int) -> None:
                                  "Ask for at least one atom."))
 
 
-#: Parameters of every learner that :func:`learn` sets itself, not options of the caller's.
-_WIRED = ("checkpoint", "resume")
-
-
 def learner_option_names(method: str) -> list[str]:
-    """The option names the learner ``method`` takes, sorted.
-
-    Every learner's options are keyword-only parameters, so its signature is the list
-    (as for the coders); ``checkpoint`` and ``resume`` are :func:`learn`'s own.
-    """
+    """The option names the learner ``method`` takes, sorted (``checkpoint`` and
+    ``resume`` are :func:`learn`'s own)."""
     check_learner(method, 1)
-    return keyword_options(METHODS[method], leave_out=_WIRED)
+    return [o.name for o in METHODS[method].options]
 
 
 def check_learner_options(method: str, options: dict, own: tuple[str, ...] = ()) -> None:
@@ -137,12 +236,9 @@ def check_learner_options(method: str, options: dict, own: tuple[str, ...] = ())
 
 
 def takes_coder(method: str) -> bool:
-    """Whether the learner codes its batches with a coder the caller picks.
-
-    pca, kmeans and subspaces fix their own coder (recorded in the result's params);
-    the others code their mini-batches with the coder given to them.
-    """
-    return method in METHODS and "coder" in inspect.signature(METHODS[method]).parameters
+    """Whether the learner codes its batches with a coder the caller picks (see
+    :attr:`Method.takes_coder`); False for an unknown name."""
+    return method in METHODS and METHODS[method].takes_coder
 
 
 def learn(
@@ -208,7 +304,7 @@ def learn(
     own = _own_state(fitted, held, probe)
     inner = None if checkpoint is None else (lambda state: checkpoint({**state, **own}))
     try:
-        result = METHODS[method](source, int(n_atoms), checkpoint=inner, resume=resume,
+        result = METHODS[method].run(source, int(n_atoms), checkpoint=inner, resume=resume,
                                  **options)
     except TypeError as exc:
         raise InputError(problem(f"options of learner {method!r}", "the method's own options",

@@ -14,7 +14,7 @@ from typing import Any, Callable, Iterable, Iterator
 import numpy as np
 from scipy import sparse
 
-from ..coding import code
+from ..coding import METHODS as CODERS, code, default_options
 from ...errors import InputError, problem
 from ..prep import Normaliser
 
@@ -450,10 +450,25 @@ def check_forget(forget: float, allow_zero: bool = False) -> float:
 
 
 def default_coder_options(coder: str, coder_options: dict | None) -> dict:
-    """The coder options a learner runs with: ``{"n_nonzero": 5}`` for OMP if none given."""
-    if coder_options is not None:
-        return dict(coder_options)
-    return {"n_nonzero": 5} if coder == "omp" else {}
+    """The coder options a learner runs with: the given ones over the coder's defaults.
+
+    The defaults (:attr:`~atomline.stages.kernels.coding.Coder.defaults`) only supply
+    options the coder requires, e.g. ``n_nonzero`` 5 for the greedy coders and ``lam``
+    for the lasso coders, so given options are never changed.
+
+    Raises
+    ------
+    InputError
+        Unknown coder, or one a learner cannot use (``learned``: its encoder is trained
+        for fixed atoms).
+    """
+    defaults = default_options(coder)  # refuses an unknown coder, listing them
+    if not CODERS[coder].in_learner:
+        usable = sorted(name for name, c in CODERS.items() if c.in_learner)
+        raise InputError(problem("coder of the learner", f"one of {usable}", repr(coder),
+                                 "Pick a listed coder; a learned encoder is trained after "
+                                 "the dictionary (train_encoder)."))
+    return {**defaults, **(coder_options or {})}
 
 
 def too_few_rows(n_atoms: int) -> None:
