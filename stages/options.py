@@ -38,7 +38,7 @@ from typing import Any
 from .checks import check_curve, check_sample_size, check_tolerance, check_workers
 from .errors import InputError, problem
 from .kernels import coding, learning
-from .kernels.coding._common import keyword_options, refuse_unknown_options
+from .kernels._records import keyword_options, refuse_unknown_options
 from .kernels.scoring import SCORES
 
 __all__ = ["TrainOptions", "EncodeOptions", "PoolOptions", "EvaluateOptions", "ReportOptions",
@@ -160,7 +160,7 @@ _SCHEMA = {"json_schema_extra": _describe_fields}
 
 def _check_coder_option_names(coder: str, options: dict) -> None:
     """Option names the coder does not take are refused, naming those it takes."""
-    refuse_unknown_options(f"coder {coder!r}", options, keyword_options(coding.METHODS[coder]),
+    refuse_unknown_options(f"coder {coder!r}", options, keyword_options(coding.METHODS[coder].run),
                            "--coder")
 
 
@@ -180,7 +180,8 @@ class TrainOptions:
                          help="sparse coder inside the learner, and the encode stage's default")
     coder_options: dict[str, Any] | None = _option(
         flag="--coder-option", shorthands={"--nonzero": "n_nonzero"},
-        help="options of the coder, KEY=VALUE, repeatable (default: n_nonzero=5); "
+        help="options of the coder, KEY=VALUE, repeatable (default: the coder's own, e.g. "
+             "n_nonzero=5 for omp); "
              "--nonzero N sets n_nonzero")
     learner_options: dict[str, Any] | None = _option(
         flag="--learner-option", help="options of the learner, KEY=VALUE, repeatable (e.g. n_passes=2)")
@@ -210,9 +211,8 @@ class TrainOptions:
 
     @property
     def train_coder_options(self) -> dict:
-        """The coder's options inside the learner (``TRAIN_CODER_OPTIONS`` when none given)."""
-        given = self.coder_options
-        return dict(learning.TRAIN_CODER_OPTIONS) if given is None else dict(given)
+        """The coder's options inside the learner: the given ones over the coder's defaults."""
+        return learning.default_coder_options(self.coder, self.coder_options)
 
 
 @dataclass(frozen=True)

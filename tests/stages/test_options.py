@@ -95,7 +95,7 @@ def test_the_learners_coder_defaults_to_the_train_stage_options_and_a_copy_is_ke
     train = TrainOptions(coder_options=given)
     given["n_nonzero"] = 9  # the caller's dict changing later does not change the options
     assert train.coder_options == {"n_nonzero": 3}
-    assert TrainOptions().train_coder_options == learning.TRAIN_CODER_OPTIONS
+    assert TrainOptions().train_coder_options == coding.METHODS["omp"].defaults == {"n_nonzero": 5}
 
 
 def test_options_are_frozen():
