@@ -1,4 +1,4 @@
-"""The train stage with every coder and no coder options: each coder's own defaults."""
+"""The train stage (and its options and preflight) with every coder and no coder options: each coder's own defaults."""
 
 from __future__ import annotations
 
@@ -8,6 +8,7 @@ from atomline.flows.preflight import check_train
 from atomline.stages import train
 from atomline.stages.errors import InputError
 from atomline.stages.kernels import coding
+from atomline.stages.options import TrainOptions
 from atomline.stages.workspace import Workspace
 
 SMALL = dict(n_atoms=8, patch_size=32, stride=32, sample_patches=500, seed=2,
@@ -24,12 +25,12 @@ def test_train_with_any_coder_and_no_options_uses_that_coders_defaults(labelled,
             check_train(labelled, "vib", method="online", coder=coder, coder_options=None,
                         **{k: SMALL[k] for k in ("n_atoms", "patch_size", "stride",
                                                  "sample_patches")})
-        with pytest.raises(InputError, match="train_encoder"):
-            train.train_dictionary(ws, "vib", coder=coder, **SMALL)
+        with pytest.raises(InputError, match="train_encoder"):  # refused when made
+            TrainOptions(coder=coder, **SMALL)
         return
     check_train(labelled, "vib", method="online", coder=coder, coder_options=None,
                 **{k: SMALL[k] for k in ("n_atoms", "patch_size", "stride", "sample_patches")})
-    made = train.train_dictionary(ws, "vib", coder=coder, **SMALL)
+    made = train.train_dictionary(ws, "vib", TrainOptions(coder=coder, **SMALL))
     attrs = ws.load_dictionary(made["dict_id"]).attrs
     assert attrs["coder"] == coder
     assert attrs["coder_options"] == dict(coding.METHODS[coder].defaults)
@@ -38,8 +39,8 @@ def test_train_with_any_coder_and_no_options_uses_that_coders_defaults(labelled,
 
 def test_given_coder_options_are_kept_and_the_default_recipe_is_unchanged(labelled):
     ws = Workspace.open(labelled)
-    default = train.train_dictionary(ws, "vib", **SMALL)
-    named = train.train_dictionary(ws, "vib", coder_options={"n_nonzero": 5}, **SMALL)
+    default = train.train_dictionary(ws, "vib", TrainOptions(**SMALL))
+    named = train.train_dictionary(ws, "vib", TrainOptions(coder_options={"n_nonzero": 5}, **SMALL))
     assert named["reused"] and named["dict_id"] == default["dict_id"]  # OMP: n_nonzero 5
-    other = train.train_dictionary(ws, "vib", coder_options={"n_nonzero": 2}, **SMALL)
+    other = train.train_dictionary(ws, "vib", TrainOptions(coder_options={"n_nonzero": 2}, **SMALL))
     assert ws.load_dictionary(other["dict_id"]).attrs["coder_options"] == {"n_nonzero": 2}
