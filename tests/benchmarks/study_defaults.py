@@ -170,7 +170,7 @@ def _short(s: Settings) -> str:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--wheel", help="path of sktime-1.2.0-py3-none-any.whl (UCR sets)")
-    parser.add_argument("--max-rows", type=int, default=500)
+    parser.add_argument("--max-rows", type=int, default=1500)
     parser.add_argument("--only", help="comma-separated data set names")
     args = parser.parse_args()
     wanted = set(args.only.split(",")) if args.only else None
