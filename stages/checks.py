@@ -11,6 +11,9 @@ from __future__ import annotations
 import numpy as np
 
 from .errors import InputError, NotFound, problem
+# Rules that belong to a kernel are written there and listed here for the preflight.
+from .kernels.classify import check_folds
+from .kernels.pooling import check_regions
 
 __all__ = ["check_workers", "check_sample_size", "check_regions", "check_curve", "check_folds",
            "check_tolerance", "check_record_shape", "promoted_or_named", "resolve_coder",
@@ -30,37 +33,11 @@ def check_sample_size(sample_patches: int, n_atoms: int) -> None:
                                  str(sample_patches), "Sample more patches or ask for fewer atoms."))
 
 
-def check_regions(grid: tuple[int, ...], regions: int | tuple[int, ...]) -> tuple[int, ...]:
-    """Parts per axis of a patch grid for pooling; each between 1 and the grid's extent.
-
-    Returns
-    -------
-    tuple of int
-        The parts per axis (an int is used on every axis).
-    """
-    parts = (regions,) * len(grid) if isinstance(regions, (int, np.integer)) else tuple(regions)
-    if len(parts) != len(grid) or any(not 1 <= r <= g for r, g in zip(parts, grid)):
-        raise InputError(problem("regions", f"1..{list(grid)} parts per axis ({len(grid)} axes)",
-                                 str(regions), "Use fewer regions than patch positions."))
-    return parts
-
-
 def check_curve(learning_curve: tuple[float, ...] | list[float]) -> None:
     """Shares of the training rows on the learning curve lie strictly between 0 and 1."""
     if any(not 0 < s < 1 for s in learning_curve):
         raise InputError(problem("learning_curve", "shares strictly between 0 and 1",
                                  str(list(learning_curve)), "Use e.g. 0.1, 0.25, 0.5."))
-
-
-def check_folds(y: np.ndarray, folds: int) -> None:
-    """Stratified cross-validation needs 2+ folds and 2+ classes with ``folds`` rows each."""
-    if folds < 2:
-        raise InputError(problem("folds", "at least 2", str(folds), "Use e.g. 5 folds."))
-    classes, counts = np.unique(y, return_counts=True)
-    if classes.size < 2 or counts.min() < folds:
-        raise InputError(problem("labels", f"at least two classes with {folds} rows each",
-                                 f"class counts {dict(zip(classes.tolist(), counts.tolist()))}",
-                                 "Label more records or use fewer folds."))
 
 
 def check_tolerance(tolerance: float) -> None:

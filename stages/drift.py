@@ -1,7 +1,8 @@
 """Drift: do newly appended records still fit the dictionary as well as the old ones?
 
-For a range of rows, a seeded sample of their patches is normalised like the training
-patches and coded with the dictionary's coder; two numbers describe how well they fit:
+For a range of rows, a seeded sample of their patches
+(:func:`~atomline.stages.kernels.features.sample_patches`, as the train stage draws its
+sample) is normalised like the training patches and coded with the dictionary's coder; two numbers describe how well they fit:
 
 * ``error`` — the mean relative reconstruction error ``‖x − Wᵀz‖² / ‖x‖²`` over patches
   of non-zero norm;
@@ -17,11 +18,11 @@ from __future__ import annotations
 
 import numpy as np
 
-from .kernels.coding import code
 from .errors import InputError, problem
+from .kernels.features import FeatureChain, sample_patches
 from .kernels.prep import Normaliser, PatchGeometry
 from .options import DriftOptions
-from .workspace import Workspace, iter_row_chunks
+from .workspace import Workspace
 
 __all__ = ["measure_fit", "compare_drift", "detect_drift"]
 
@@ -37,7 +38,8 @@ def measure_fit(workspace: Workspace | str, records: str, dict_id: str, rows: sl
     rows : slice
         Row range ``start:stop`` of ``data/<records>`` (step 1).
     max_patches : int
-        Patches coded at most (a seeded uniform sample); bounds memory and time.
+        Patches coded at most (a seeded uniform sample of twice the fewest rows that
+        hold them); bounds memory and time.
     seed : int
 
     Returns
@@ -52,22 +54,13 @@ def measure_fit(workspace: Workspace | str, records: str, dict_id: str, rows: sl
         raise InputError(problem(f"rows of data/{records}", "a non-empty range with step 1",
                                  f"{start}:{stop}:{step}", "Pass e.g. slice(old_count, None)."))
     stored = ws.load_dictionary(dict_id)
-    geometry = PatchGeometry.from_attrs(stored.attrs["geometry"])
-    normaliser = Normaliser.from_stored(stored.attrs["preprocessing"], stored.arrays)
-    coder, options = stored.attrs["coder"], dict(stored.attrs["coder_options"])
-    rng = np.random.default_rng(seed)
-    P = geometry.patches_per_record
-    n_rows = min(stop - start, max(1, -(-max_patches // P)))
-    chosen = np.sort(rng.choice(np.arange(start, stop), size=n_rows, replace=False))
-    blocks = []
-    for _, sl in iter_row_chunks(arr):
-        inside = chosen[(chosen >= sl.start) & (chosen < sl.stop)]
-        if inside.size:
-            blocks.append(np.asarray(arr[sl])[inside - sl.start])
-    X = normaliser.apply(geometry.extract(np.concatenate(blocks)).astype(np.float64))
-    if X.shape[0] > max_patches:
-        X = X[np.sort(rng.choice(X.shape[0], size=max_patches, replace=False))]
-    codes = code(X, stored.atoms, coder, **options)
+    chain = FeatureChain(PatchGeometry.from_attrs(stored.attrs["geometry"]), stored.atoms,
+                         stored.attrs["coder"], dict(stored.attrs["coder_options"]),
+                         Normaliser.from_stored(stored.attrs["preprocessing"], stored.arrays))
+    X = chain.normalise(sample_patches(
+        np.arange(start, stop), chain.geometry, max_patches, seed, chunk_rows=arr.chunks[0],
+        read=lambda c: ws.read_chunk(records, c, arr)))
+    codes = chain.code_patches(X)
     residual = X - codes.dense() @ stored.atoms
     energy = np.einsum("ij,ij->i", X, X)
     keep = energy > 0

@@ -5,8 +5,10 @@
 attributes ending in ``_``), so it works inside a ``Pipeline`` and under
 ``GridSearchCV``. It is built on the same kernels as the workspace stages — the patch
 geometry and normaliser of :mod:`.prep`, :func:`.learning.learn`, :func:`.coding.code`
-and :func:`.pool.pool_codes` — so in-memory features equal the pipeline's for the same
-dictionary and options.
+and :func:`.pooling.pool_codes`, chained by :class:`.features.FeatureChain`, its
+training sample drawn by the train stage's :func:`.features.sample_patches` — so in-memory
+features equal the pipeline's for the same dictionary and options, and ``fit`` learns the
+train stage's dictionary from the same records and options.
 
 Example
 -------
@@ -27,10 +29,10 @@ import numpy as np
 from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.utils.validation import check_is_fitted, validate_data
 
-from .kernels.coding import code, gram
 from .errors import InputError, problem
+from .kernels.features import FeatureChain, sample_patches
 from .kernels.learning import learn
-from .pool import pool_codes, region_of_patches
+from .kernels.pooling import region_of_patches
 from .kernels.prep import Normaliser, PatchGeometry
 from .options import PoolOptions, TrainOptions
 
@@ -43,7 +45,7 @@ class SparseCodePooler(TransformerMixin, BaseEstimator):
     Each row of ``X`` is one record, flattened; ``record_shape`` says how to lay it out
     (``(L,)`` for a 1-D signal, ``(H, W)`` or ``(H, W, C)`` for an image). Records are
     cut into patches, the patches normalised and sparse-coded over the learned atoms,
-    and the codes pooled per region of the patch grid (see :mod:`.pool`).
+    and the codes pooled per region of the patch grid (see :mod:`.kernels.pooling`).
 
     Parameters
     ----------
@@ -63,7 +65,8 @@ class SparseCodePooler(TransformerMixin, BaseEstimator):
     learner_options : dict, optional
         Other options of the learner.
     sample_patches : int
-        Patches drawn (seeded) from the training records to learn from.
+        Patches drawn (seeded) from the training records to learn from, as the train
+        stage draws them (:func:`~atomline.stages.kernels.features.sample_patches`).
     reduce : {"max", "mean"}
     split_sign : bool
     regions : int or tuple of int
@@ -121,10 +124,10 @@ class SparseCodePooler(TransformerMixin, BaseEstimator):
         geometry = self._geometry(X.shape[1])
         train, pool = self._options(geometry)  # refuses bad values before learning
         region_of_patches(geometry.grid, pool.regions)  # refuse bad regions before learning
-        patches = geometry.extract(X.reshape(X.shape[0], *geometry.record_shape)).astype(np.float64)
-        rng = np.random.default_rng(train.seed)
-        if patches.shape[0] > train.sample_patches:
-            patches = patches[np.sort(rng.choice(patches.shape[0], train.sample_patches, replace=False))]
+        records = X.reshape(X.shape[0], *geometry.record_shape)
+        # All records are in memory: one chunk.
+        patches = sample_patches(X.shape[0], geometry, train.sample_patches, train.seed,
+                                 chunk_rows=X.shape[0], read=lambda c: records)
         if patches.shape[0] < train.n_atoms:
             raise InputError(problem("X", f"at least n_atoms = {train.n_atoms} patches to learn from",
                                      f"{patches.shape[0]} patches from n_samples = {X.shape[0]}",
@@ -136,8 +139,7 @@ class SparseCodePooler(TransformerMixin, BaseEstimator):
         self.normaliser_ = learned.preprocessing
         self.geometry_ = geometry
         self.diagnostics_ = learned.diagnostics
-        _, n_regions = region_of_patches(geometry.grid, self.regions)
-        self.n_features_out_ = (2 if self.split_sign else 1) * n_regions * int(self.n_atoms)
+        self.n_features_out_ = self._chain().n_features
         return self
 
     def transform(self, X) -> np.ndarray:
@@ -153,18 +155,8 @@ class SparseCodePooler(TransformerMixin, BaseEstimator):
         """
         check_is_fitted(self, "atoms_")
         X = validate_data(self, X, dtype=[np.float64, np.float32], reset=False)
-        geometry = self.geometry_
-        patches = self.normaliser_.apply(
-            geometry.extract(X.reshape(X.shape[0], *geometry.record_shape)).astype(np.float64))
-        options = self._coder_options(geometry)
-        if self.coder == "omp":
-            options["gram"] = gram(self.atoms_)  # once per call, shared by every row
-        codes = code(patches, self.atoms_, self.coder, **options)
-        region, n_regions = region_of_patches(geometry.grid, self.regions)
-        pooled = pool_codes(codes.index, codes.value, n_atoms=self.atoms_.shape[0],
-                            patch_region=region, n_regions=n_regions, reduce=self.reduce,
-                            split_sign=self.split_sign)
-        return pooled.astype(np.float64)
+        records = X.reshape(X.shape[0], *self.geometry_.record_shape)
+        return self._chain().features(records).astype(np.float64)
 
     def get_feature_names_out(self, input_features=None) -> np.ndarray:
         """Names ``<sign>_r<region>_a<atom>``, in the order of the columns of ``transform``.
@@ -200,6 +192,13 @@ class SparseCodePooler(TransformerMixin, BaseEstimator):
                              learner_options=self.learner_options,
                              sample_patches=self.sample_patches, seed=self.seed)
         return train, PoolOptions(reduce=self.reduce, split_sign=self.split_sign, regions=self.regions)
+
+    def _chain(self) -> FeatureChain:
+        """The fitted dictionary's records→features chain (coded in float64)."""
+        return FeatureChain(self.geometry_, self.atoms_, self.coder,
+                            self._coder_options(self.geometry_), self.normaliser_,
+                            regions=self.regions, reduce=self.reduce, split_sign=self.split_sign,
+                            dtype=np.float64)
 
     def _geometry(self, n_columns: int) -> PatchGeometry:
         shape = (n_columns,) if self.record_shape is None else tuple(int(s) for s in self.record_shape)

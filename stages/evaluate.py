@@ -21,9 +21,12 @@ Protocol
    ``pca``             the leading ``min(k, d)`` principal directions of a patch sample
                        as the dictionary, coded and pooled the same way.
 
-   The two dictionary baselines are built here from the records with
-   :func:`baseline_atoms` (plain numpy), then coded and pooled with the project's own
-   kernels; like the learned dictionary they never see labels.
+   The two dictionary baselines are built from a sample of the evaluated records' patches
+   (:func:`~atomline.stages.kernels.features.sample_patches`) by the learners
+   ``random-patches`` and ``pca``
+   (:func:`~atomline.stages.kernels.features.baseline_atoms`), then coded and pooled by
+   :class:`~atomline.stages.kernels.features.FeatureChain`; like the learned dictionary
+   they never see labels.
 5. **Scores**: accuracy, balanced accuracy, macro-F1 (see :mod:`.scoring`), a per-class
    report and the confusion matrix of every set; per-fold accuracies.
 6. **Intervals**: for every baseline, a paired percentile bootstrap over the rows of
@@ -45,129 +48,30 @@ the nightly promotion gate, :func:`gate_decision`).
 
 from __future__ import annotations
 
-from typing import Iterator
-
 import numpy as np
 from prefect import task
 from prefect.cache_policies import NO_CACHE
-from sklearn.linear_model import LogisticRegression
-from sklearn.metrics import precision_recall_fscore_support
-from sklearn.model_selection import StratifiedKFold, train_test_split
-from sklearn.pipeline import Pipeline, make_pipeline
-from sklearn.preprocessing import StandardScaler
-from sklearn.svm import LinearSVC
 from threadpoolctl import threadpool_limits
 
-from .kernels.coding import code, gram
 from .encode import codes_path
-from .checks import check_folds, check_tolerance
+from .checks import check_tolerance
 from .errors import BadChunk, InputError, problem
-from .pool import features_path, pool_codes, region_of_patches
+from .pool import features_path
+from .kernels.classify import (class_report, cross_predict, curve_points, curve_report,
+                               labelled_rows, make_classifier, stratified_folds)
+from .kernels.features import FeatureChain, baseline_atoms, row_blocks, sample_patches, take_rows
 from .kernels.prep import Normaliser, PatchGeometry
 from .kernels.scoring import confusion, paired_bootstrap, scores_from_confusion
 from .options import BASELINES, CLASSIFIERS, DEFAULT_CURVE, EvaluateOptions
 from .workspace import Workspace, fingerprint_params, iter_row_chunks
 
-__all__ = ["evaluate_features", "evaluate_task", "evaluation_key", "cross_predict", "make_classifier",
-           "baseline_atoms", "compare_evaluations", "gate_decision", "CLASSIFIERS",
-           "BASELINES", "GATE_OUTCOMES"]
+__all__ = ["evaluate_features", "evaluate_task", "evaluation_key", "compare_evaluations",
+           "gate_decision", "CLASSIFIERS", "BASELINES", "GATE_OUTCOMES"]
 
 # CLASSIFIERS, BASELINES and DEFAULT_CURVE are declared with the options; on the learning
 # curve the full share is the main result and is added to the curve.
 #: Patches drawn from the evaluated rows to build the random-patch and PCA dictionaries.
 _BASELINE_SAMPLE = 20_000
-
-
-def make_classifier(classifier: str = "logistic", *, C: float = 1.0, seed: int = 0) -> Pipeline:
-    """The evaluation's classifier: standardisation, then a linear model.
-
-    Parameters
-    ----------
-    classifier : {"logistic", "linear-svm"}
-    C : float
-        Inverse L2 regularisation strength.
-    seed : int
-
-    Returns
-    -------
-    sklearn.pipeline.Pipeline
-    """
-    if classifier == "logistic":
-        model = LogisticRegression(C=C, max_iter=2000, random_state=seed)
-    elif classifier == "linear-svm":
-        model = LinearSVC(C=C, max_iter=5000, random_state=seed)
-    else:
-        raise InputError(problem("classifier", f"one of {CLASSIFIERS}", repr(classifier),
-                                 "Pick a listed classifier."))
-    return make_pipeline(StandardScaler(), model)
-
-
-def cross_predict(
-    X: np.ndarray, y: np.ndarray, folds: list[tuple[np.ndarray, np.ndarray]], *,
-    classifier: str = "logistic", C: float = 1.0, seed: int = 0,
-) -> tuple[np.ndarray, list[float]]:
-    """Out-of-fold predictions.
-
-    Parameters
-    ----------
-    X : ndarray of shape (n, F)
-    y : ndarray of shape (n,), int
-    folds : list of (train positions, test positions)
-        Positions into ``X``; the test parts cover every row once.
-    classifier, C, seed
-        As :func:`make_classifier`.
-
-    Returns
-    -------
-    pred : ndarray of shape (n,), int64
-    fold_accuracy : list of float
-        Accuracy on each fold's test part.
-    """
-    pred = np.full(y.shape[0], -1, dtype=np.int64)
-    fold_accuracy = []
-    for train, test in folds:
-        model = make_classifier(classifier, C=C, seed=seed).fit(X[train], y[train])
-        pred[test] = model.predict(X[test])
-        fold_accuracy.append(float(np.mean(pred[test] == y[test])))
-    return pred, fold_accuracy
-
-
-def baseline_atoms(kind: str, patches: np.ndarray, n_atoms: int, seed: int = 0) -> np.ndarray:
-    """A dictionary that needs no learning, for the baselines.
-
-    Parameters
-    ----------
-    kind : {"random_patches", "pca"}
-        ``random_patches``: ``n_atoms`` rows of ``patches`` drawn without replacement
-        (seeded) among those of non-zero norm, scaled to unit norm.
-        ``pca``: the leading ``min(n_atoms, d)`` right singular vectors of the centred
-        patches (unit norm, orthogonal).
-    patches : ndarray of shape (m, d)
-        Preprocessed patches.
-    n_atoms : int
-    seed : int
-
-    Returns
-    -------
-    ndarray of shape (k', d), float64
-        ``k' = n_atoms`` for random patches, ``min(n_atoms, d, m)`` for PCA.
-    """
-    patches = np.asarray(patches, dtype=np.float64)
-    if kind == "random_patches":
-        norms = np.linalg.norm(patches, axis=1)
-        usable = np.flatnonzero(norms > 1e-8 * max(float(norms.max(initial=0)), 1e-300))
-        if usable.size == 0:
-            raise InputError(problem("baseline patches", "some non-constant patches",
-                                     "only zero patches", "Check the records."))
-        rng = np.random.default_rng(seed)
-        pick = rng.choice(usable, size=n_atoms, replace=usable.size < n_atoms)
-        return patches[pick] / norms[pick, None]
-    if kind == "pca":
-        centred = patches - patches.mean(axis=0)
-        _, _, vt = np.linalg.svd(centred, full_matrices=False)
-        return vt[: min(n_atoms, vt.shape[0])]
-    raise InputError(problem("baseline dictionary", "'random_patches' or 'pca'", repr(kind),
-                             "Pick a listed baseline."))
 
 
 def evaluate_features(
@@ -240,7 +144,7 @@ def evaluate_features(
     lacking = _skipped_rows(out, n_records)
     if on_bad_chunk == "skip":  # leave out the rows of features chunks that do not decode
         lacking = np.union1d(lacking, _unreadable_rows(out))
-    rows = _labelled_rows(y_all, max_rows, seed, folds, exclude=lacking)
+    rows = labelled_rows(y_all, max_rows, seed, folds, exclude=lacking)
     rows_fingerprint = fingerprint_params({"rows": rows.tolist(), "y": y_all[rows].tolist()})
     protocol = {"classifier": classifier, "C": C, "folds": folds, "seed": seed,
                 "max_rows": max_rows, "n_boot": n_boot}
@@ -253,8 +157,7 @@ def evaluate_features(
         return _manifest(earlier, reused=True)
     classes, y = np.unique(y_all[rows], return_inverse=True)
     n_classes = classes.size
-    splitter = StratifiedKFold(n_splits=folds, shuffle=True, random_state=seed)
-    fold_parts = list(splitter.split(np.zeros(rows.size), y))
+    fold_parts = stratified_folds(y, folds, seed)
     fit = dict(classifier=classifier, C=C, seed=seed)
 
     predictions: dict[str, np.ndarray] = {}
@@ -266,7 +169,7 @@ def evaluate_features(
             X = _feature_set(ws, name, records, dict_id, rows, seed)
             predictions[name], fold_scores[name] = cross_predict(X, y, fold_parts, **fit)
             if learning_curve and name in ("features", "raw"):
-                curve_inputs[name] = _curve(X, y, fold_parts, learning_curve, seed, fit)
+                curve_inputs[name] = curve_points(X, y, fold_parts, learning_curve, seed, fit)
             del X  # one feature set in memory at a time
 
     metrics, per_class, arrays = {}, {}, {"rows": rows}
@@ -274,13 +177,13 @@ def evaluate_features(
         conf = confusion(y, pred, n_classes)
         metrics[name] = {k: float(v) for k, v in scores_from_confusion(conf).items()}
         metrics[name]["fold_accuracy"] = fold_scores[name]
-        per_class[name] = _per_class(y, pred, classes)
+        per_class[name] = class_report(y, pred, classes)
         arrays[f"pred_{name}"] = classes[pred]
         arrays[f"confusion_{name}"] = conf
     versus = {b: paired_bootstrap(y, predictions["features"], predictions[b], n_classes,
                                   n_boot=n_boot, seed=seed)
               for b in sets[1:]}
-    curve = _curve_report(curve_inputs, metrics, fold_parts, learning_curve)
+    curve = curve_report(curve_inputs, metrics, fold_parts, learning_curve)
 
     fattrs = out.attrs
     cattrs = ws.output(codes_path(dict_id, records)).attrs
@@ -428,40 +331,6 @@ def _skipped_rows(out, n_records: int) -> np.ndarray:
     return np.concatenate(parts) if parts else np.zeros(0, dtype=np.int64)
 
 
-def _labelled_rows(y: np.ndarray, max_rows: int, seed: int, folds: int,
-                   exclude: np.ndarray | None = None) -> np.ndarray:
-    """Sorted row numbers to use: all rows but ``exclude``, or a stratified seeded subsample."""
-    keep = np.ones(y.shape[0], dtype=bool)
-    if exclude is not None:
-        keep[exclude] = False
-    check_folds(y[keep], folds)
-    rows = np.flatnonzero(keep)
-    if rows.size > max_rows:
-        rows, _ = train_test_split(rows, train_size=max_rows, stratify=y[rows], random_state=seed)
-    return np.sort(rows)
-
-
-def _row_blocks(arr, rows: np.ndarray, read) -> Iterator[np.ndarray]:
-    """The given sorted rows of ``arr``, one block per row chunk that holds some.
-
-    ``read(chunk, rows_slice)`` reads one chunk and names it if it is bad
-    (``Workspace.read_chunk`` for records, ``Output.read`` for features).
-    """
-    for c, sl in iter_row_chunks(arr):
-        inside = rows[(rows >= sl.start) & (rows < sl.stop)]
-        if inside.size:
-            yield read(c, sl)[inside - sl.start]
-
-
-def _take_rows(arr, rows: np.ndarray, read) -> np.ndarray:
-    """Read the given sorted rows chunk by chunk (never the whole array at once)."""
-    return np.concatenate(list(_row_blocks(arr, rows, read)))
-
-
-def _records_reader(ws: Workspace, records: str, arr):
-    return lambda c, sl: ws.read_chunk(records, c, arr)
-
-
 def _unreadable_rows(out) -> np.ndarray:
     """Rows of the features' chunks that cannot be decoded (one read of every chunk)."""
     arr = out.group["values"]
@@ -474,15 +343,24 @@ def _unreadable_rows(out) -> np.ndarray:
     return np.concatenate(parts) if parts else np.zeros(0, dtype=np.int64)
 
 
+def _records_reader(ws: Workspace, records: str, arr):
+    """``read(c)`` of the records' row chunks, naming a chunk that does not decode."""
+    return lambda c: ws.read_chunk(records, c, arr)
+
+
 def _feature_set(ws: Workspace, name: str, records: str, dict_id: str, rows: np.ndarray,
                  seed: int) -> np.ndarray:
     """ndarray of shape (len(rows), F_name), float32: one feature set of the rows."""
     if name == "features":
         out = ws.output(features_path(dict_id, records))
-        return _take_rows(out.group["values"], rows, lambda c, sl: out.read("values", sl))
+        values = out.group["values"]
+        n, chunk_rows = values.shape[0], values.chunks[0]
+        return take_rows(rows, chunk_rows, lambda c: out.read(
+            "values", slice(c * chunk_rows, min(n, (c + 1) * chunk_rows))))
     arr = ws.records(records)
     if name == "raw":
-        return _take_rows(arr, rows, _records_reader(ws, records, arr)).reshape(rows.size, -1).astype(np.float32)
+        raw = take_rows(rows, arr.chunks[0], _records_reader(ws, records, arr))
+        return raw.reshape(rows.size, -1).astype(np.float32)
     return _dictionary_baseline(ws, name, arr, records, dict_id, rows, seed)
 
 
@@ -494,69 +372,19 @@ def _dictionary_baseline(ws: Workspace, kind: str, arr, records: str, dict_id: s
     pooling = ws.output(features_path(dict_id, records)).attrs["params"]
     geometry = PatchGeometry.from_attrs(stored.attrs["geometry"])
     normaliser = Normaliser.from_stored(stored.attrs["preprocessing"], stored.arrays)
-    rng = np.random.default_rng(seed)
-    P = geometry.patches_per_record
-    n_sample_rows = min(rows.size, max(1, -(-_BASELINE_SAMPLE // P) * 2))
-    sample_rows = np.sort(rng.choice(rows, size=n_sample_rows, replace=False))
-    patches = normaliser.apply(geometry.extract(
-        _take_rows(arr, sample_rows, _records_reader(ws, records, arr))).astype(np.float64))
-    if patches.shape[0] > _BASELINE_SAMPLE:
-        patches = patches[rng.choice(patches.shape[0], _BASELINE_SAMPLE, replace=False)]
+    read = _records_reader(ws, records, arr)
+    patches = normaliser.apply(sample_patches(rows, geometry, _BASELINE_SAMPLE, seed,
+                                              chunk_rows=arr.chunks[0], read=read))
     atoms = baseline_atoms(kind, patches, stored.atoms.shape[0], seed)
-    coder, options = cattrs["params"]["coder"], dict(cattrs["params"]["coder_options"])
+    options = dict(cattrs["params"]["coder_options"])
     if "n_nonzero" in options:
         options["n_nonzero"] = min(options["n_nonzero"], atoms.shape[0])
-    region, R = region_of_patches(geometry.grid, pooling["regions"])
-    blocks = []
-    for block in _row_blocks(arr, rows, _records_reader(ws, records, arr)):
-        X = normaliser.apply(geometry.extract(block))
-        W = atoms.astype(X.dtype)
-        extra = {"gram": gram(W)} if coder == "omp" else {}
-        codes = code(X, W, coder, **options, **extra)
-        blocks.append(pool_codes(codes.index, codes.value, n_atoms=W.shape[0],
-                                 patch_region=region, n_regions=R,
-                                 reduce=pooling["reduce"], split_sign=pooling["split_sign"]))
-    return np.concatenate(blocks)
-
-
-def _per_class(y: np.ndarray, pred: np.ndarray, classes: np.ndarray) -> dict:
-    """Precision, recall, F1 and support per class (keys are the class labels)."""
-    p, r, f, s = precision_recall_fscore_support(y, pred, labels=np.arange(classes.size),
-                                                 zero_division=0)
-    return {str(c): {"precision": float(p[i]), "recall": float(r[i]), "f1": float(f[i]),
-                     "support": int(s[i])} for i, c in enumerate(classes.tolist())}
-
-
-def _curve(X: np.ndarray, y: np.ndarray, fold_parts: list, shares, seed: int, fit: dict) -> np.ndarray:
-    """ndarray of shape (len(shares), 2): mean training rows and mean accuracy per share."""
-    out = np.zeros((len(shares), 2))
-    n_classes = np.unique(y).size
-    for i, share in enumerate(shares):
-        sizes, scores = [], []
-        for train, test in fold_parts:
-            n_keep = max(int(round(share * train.size)), 2 * n_classes)
-            if n_keep >= train.size:
-                kept = train
-            else:
-                kept, _ = train_test_split(train, train_size=n_keep, stratify=y[train],
-                                           random_state=seed)
-            model = make_classifier(**fit).fit(X[kept], y[kept])
-            scores.append(float(np.mean(model.predict(X[test]) == y[test])))
-            sizes.append(kept.size)
-        out[i] = np.mean(sizes), np.mean(scores)
-    return out
-
-
-def _curve_report(inputs: dict[str, np.ndarray], metrics: dict, fold_parts: list, shares) -> dict:
-    """Plain-JSON learning curve: shares, training rows, accuracy per set (full share last)."""
-    if not inputs:
-        return {}
-    full_rows = float(np.mean([train.size for train, _ in fold_parts]))
-    report = {"shares": [float(s) for s in shares] + [1.0],
-              "train_rows": [float(v) for v in inputs["features"][:, 0]] + [full_rows]}
-    for name, values in inputs.items():
-        report[name] = [float(v) for v in values[:, 1]] + [float(np.mean(metrics[name]["fold_accuracy"]))]
-    return report
+    chain = FeatureChain(geometry, atoms, cattrs["params"]["coder"], options, normaliser,
+                         regions=pooling["regions"], reduce=pooling["reduce"],
+                         split_sign=pooling["split_sign"])
+    # Chunk by chunk, coded in the records' dtype as the encode stage codes them.
+    return np.concatenate([chain.features(block)
+                           for block in row_blocks(rows, arr.chunks[0], read)])
 
 
 #: The evaluate stage as a Prefect task.

@@ -1,19 +1,9 @@
 """The pool stage: one fixed-length feature vector per record from its patches' codes.
 
-The patch grid of a record (see :class:`~atomline.stages.kernels.prep.PatchGeometry`) is cut into
-``regions`` equal parts — segments of a 1-D record, a grid of rectangles of an image — and
-within each region every atom's coefficients are reduced to one number:
-
-* ``reduce="max"``: the largest magnitude, ``max |z|``;
-* ``reduce="mean"``: the mean magnitude, ``mean |z|``.
-
-With ``split_sign=True`` the positive and negative parts ``max(0, z)`` and ``max(0, −z)``
-are pooled separately (so a feature says which polarity an atom appeared with). The
-feature vector of a record has ``F = (2 if split_sign else 1) × R × k`` entries, ordered
-sign-major, then region, then atom.
-
-:func:`pool_codes` is the pure kernel; :func:`prepare_pool` / :func:`pool_chunks` are the
-stage, with ``pool_task`` its Prefect task.
+How codes are pooled (regions of the patch grid, ``max``/``mean``, split signs) is the
+kernel :mod:`atomline.stages.kernels.pooling`; this stage reads the codes chunk by chunk,
+calls :func:`~atomline.stages.kernels.pooling.pool_codes` and writes the features:
+:func:`prepare_pool` / :func:`pool_chunks`, with ``pool_task`` its Prefect task.
 """
 
 from __future__ import annotations
@@ -24,106 +14,19 @@ import numpy as np
 from prefect import task
 from prefect.cache_policies import NO_CACHE
 
-from .checks import check_regions
 from .errors import BadChunk, FingerprintMismatch, InputError, problem, retry_if_transient
 from .encode import codes_path
+from .kernels.pooling import check_reduce, n_pooled, pool_codes, region_of_patches
 from .kernels.prep import PatchGeometry
-from .options import REDUCTIONS, PoolOptions
+from .options import PoolOptions
 from .workspace import Workspace, fingerprint_params
 
-__all__ = ["pool_codes", "region_of_patches", "prepare_pool", "pool_chunks", "pool_task",
-           "features_path"]
-
+__all__ = ["prepare_pool", "pool_chunks", "pool_task", "features_path"]
 
 
 def features_path(dict_id: str, records: str) -> str:
     """Workspace path of the pooled features of ``records`` under ``dict_id``."""
     return f"features/{dict_id}/{records}"
-
-
-def region_of_patches(grid: tuple[int, ...], regions: int | tuple[int, ...]) -> tuple[np.ndarray, int]:
-    """Assign every patch position of a grid to a region.
-
-    Parameters
-    ----------
-    grid : tuple of int
-        Patch positions per spatial axis (``PatchGeometry.grid``).
-    regions : int or tuple of int
-        Equal parts per axis; an int is used on every axis.
-
-    Returns
-    -------
-    region : ndarray of shape (P,), int64
-        Region number of each patch, in the raster order of the grid.
-    n_regions : int
-        ``R``, the product of the parts per axis.
-    """
-    parts = check_regions(grid, regions)
-    per_axis = [(np.arange(g) * r) // g for g, r in zip(grid, parts)]
-    region = np.zeros(grid, dtype=np.int64)
-    for axis, ids in enumerate(per_axis):
-        shape = [1] * len(grid)
-        shape[axis] = grid[axis]
-        region = region * parts[axis] + ids.reshape(shape)
-    return region.reshape(-1), int(np.prod(parts))
-
-
-def pool_codes(
-    index: np.ndarray,
-    value: np.ndarray,
-    *,
-    n_atoms: int,
-    patch_region: np.ndarray,
-    n_regions: int,
-    reduce: str = "max",
-    split_sign: bool = True,
-) -> np.ndarray:
-    """Pool the sparse codes of whole records.
-
-    Parameters
-    ----------
-    index : ndarray of shape (n_records * P, q), int
-        Atom numbers, ``-1`` in unused slots.
-    value : ndarray of shape (n_records * P, q), float
-    n_atoms : int
-        ``k``.
-    patch_region : ndarray of shape (P,), int
-        Region of each patch position (from :func:`region_of_patches`).
-    n_regions : int
-        ``R``.
-    reduce : {"max", "mean"}
-    split_sign : bool
-
-    Returns
-    -------
-    ndarray of shape (n_records, F), float32
-        ``F = (2 if split_sign else 1) * R * k``.
-    """
-    if reduce not in REDUCTIONS:
-        raise InputError(problem("reduce", f"one of {REDUCTIONS}", repr(reduce),
-                                 "Pick a listed reduction."))
-    P = patch_region.shape[0]
-    n_records = index.shape[0] // P
-    q = index.shape[1]
-    used = index >= 0
-    row = np.repeat(np.arange(index.shape[0]), q).reshape(index.shape)
-    record, pos = row // P, row % P
-    cell = (record * n_regions + patch_region[pos]) * n_atoms + index  # (rec, region, atom)
-    cell, v = cell[used], value[used].astype(np.float64)
-    parts = [np.maximum(v, 0), np.maximum(-v, 0)] if split_sign else [np.abs(v)]
-    size = n_records * n_regions * n_atoms
-    pooled = []
-    for part in parts:
-        acc = np.zeros(size)
-        if reduce == "max":
-            np.maximum.at(acc, cell, part)  # every value is ≥ 0, so 0 is a neutral start
-        else:
-            np.add.at(acc, cell, part)
-            patches_in_region = np.bincount(patch_region, minlength=n_regions)
-            acc = (acc.reshape(n_records, n_regions, n_atoms)
-                   / patches_in_region[None, :, None]).reshape(-1)
-        pooled.append(acc.reshape(n_records, n_regions * n_atoms))
-    return np.concatenate(pooled, axis=1).astype(np.float32)
 
 
 def prepare_pool(
@@ -157,12 +60,10 @@ def prepare_pool(
     cattrs = codes.attrs
     geometry = PatchGeometry.from_attrs(cattrs["geometry"])
     _, R = region_of_patches(geometry.grid, regions)
-    if reduce not in REDUCTIONS:
-        raise InputError(problem("reduce", f"one of {REDUCTIONS}", repr(reduce),
-                                 "Pick a listed reduction."))
+    check_reduce(reduce)
     params = {"reduce": reduce, "split_sign": bool(split_sign),
               "regions": regions if isinstance(regions, int) else list(regions)}
-    F = (2 if split_sign else 1) * R * cattrs["n_atoms"]
+    F = n_pooled(cattrs["n_atoms"], R, split_sign)
     n_records = codes.group["count"].shape[0] // cattrs["patches_per_record"]
     attrs = {"records": records, "dict_id": dict_id, "codes_fingerprint": cattrs["fingerprint"],
              "coder": cattrs["params"]["coder"], "params": params, "n_features": F,

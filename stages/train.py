@@ -11,17 +11,16 @@ the finished dictionary instead of training again.
 
 from __future__ import annotations
 
-from typing import Any
-
 import numpy as np
 from prefect import task
 from prefect.cache_policies import NO_CACHE
 
 from .checks import check_sample_size
+from .kernels.features import sample_patches
 from .kernels.learning import TRAIN_OWN_OPTIONS, check_learner_options, learn, takes_coder
 from .kernels.prep import Normaliser, PatchGeometry
 from .options import TrainOptions
-from .workspace import Workspace, fingerprint_params, iter_row_chunks
+from .workspace import Workspace, fingerprint_params
 
 __all__ = ["train_dictionary", "train_task", "train_encoder", "train_encoder_task"]
 
@@ -92,8 +91,7 @@ def train_dictionary(
     with ws.lease(f"dictionaries/{dict_id}", run=run, break_existing=break_lease) as held:
         if ws.has_dictionary(dict_id):  # finished by another run just before we took the lease
             return _manifest(ws.load_dictionary(dict_id).attrs, dict_id, reused=True)
-        sample = _sample_patches(arr, geometry, sample_patches, seed,
-                                 read=lambda c: ws.read_chunk(records, c, arr))
+        sample = _sample(ws, records, arr, geometry, sample_patches, seed)
         # Checkpoints live in the workspace: a killed run resumes from the last one and
         # ends with the same atoms as an uninterrupted run.
         learned = learn(
@@ -116,6 +114,14 @@ def train_dictionary(
     return _manifest(stored.attrs, dict_id, reused=False)
 
 
+def _sample(ws: Workspace, records: str, arr, geometry: PatchGeometry, n_patches: int,
+            seed: int) -> np.ndarray:
+    """ndarray of shape (n_patches, d), float64: a seeded sample of the records' patches,
+    reading (and checking) only the chunks that hold chosen records."""
+    return sample_patches(arr.shape[0], geometry, n_patches, seed, chunk_rows=arr.chunks[0],
+                          read=lambda c: ws.read_chunk(records, c, arr))
+
+
 def _save_checkpoint(ws: Workspace, held, dict_id: str, state: dict) -> None:
     """Store a learner checkpoint, only while the dictionary's lease is still this run's."""
     held.check()
@@ -135,35 +141,6 @@ def _manifest(attrs: dict, dict_id: str, reused: bool) -> dict:
         "coherence": diag.get("coherence"),
         "final_objective": objective[-1],
     }
-
-
-def _sample_patches(arr: Any, geometry: PatchGeometry, n_patches: int, seed: int,
-                    read=None) -> np.ndarray:
-    """Draw ``n_patches`` patches uniformly over the archive, reading only needed chunks.
-
-    Records are chosen first (seeded, without replacement, independent of the chunking),
-    then patches among theirs; the result depends on the seed and the data only.
-    ``read(chunk)`` reads and checks one row chunk (default: plain slicing).
-
-    Returns
-    -------
-    ndarray of shape (n_patches, d), float64
-    """
-    rng = np.random.default_rng(seed)
-    n = arr.shape[0]
-    P = geometry.patches_per_record
-    n_records = min(n, -(-n_patches // P) * 2)  # twice the minimum, for patch diversity
-    chosen = np.sort(rng.choice(n, size=n_records, replace=False))
-    parts = []
-    for c, rows in iter_row_chunks(arr):
-        inside = chosen[(chosen >= rows.start) & (chosen < rows.stop)]
-        if inside.size:
-            whole = np.asarray(arr[rows.start : rows.stop]) if read is None else read(c)
-            block = whole[inside - rows.start]
-            parts.append(geometry.extract(block))
-    patches = np.concatenate(parts)
-    keep = np.sort(rng.choice(patches.shape[0], size=min(n_patches, patches.shape[0]), replace=False))
-    return patches[keep].astype(np.float64)
 
 
 def train_encoder(
@@ -215,8 +192,7 @@ def train_encoder(
     stored = ws.load_dictionary(dict_id)
     geometry = PatchGeometry.from_attrs(stored.attrs["geometry"])
     normaliser = Normaliser.from_stored(stored.attrs["preprocessing"], stored.arrays)
-    sample = normaliser.apply(_sample_patches(arr, geometry, sample_patches, seed,
-                                              read=lambda c: ws.read_chunk(records, c, arr)))
+    sample = normaliser.apply(_sample(ws, records, arr, geometry, sample_patches, seed))
     encoder = fit_learned_encoder(sample, stored.atoms, target, n_layers, seed=seed,
                                   **(fit_options or {}), **(target_options or {}))
     fingerprint = ws.save_encoder(dict_id, name, encoder.arrays(), {"encoder": encoder.attrs()})

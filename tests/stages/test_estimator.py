@@ -92,3 +92,20 @@ def test_same_features_as_the_workspace_pipeline(digits_workspace):
     ours = est.transform(images.reshape(300, 64).astype(np.float32))
     stage = ws.output(features_path(dict_id, "digits")).group["values"][:300]
     np.testing.assert_allclose(ours, stage, rtol=1e-4, atol=1e-5)
+
+
+def test_fit_learns_the_train_stage_dictionary(digits_workspace):
+    # One sampling and one learner: fit() on the records learns, atom for atom, the
+    # dictionary the train stage learned from the same records and options (the stage
+    # reads them in chunks of 300 rows, fit() holds them in memory).
+    from conftest import DIGITS_TRAIN
+
+    ws, dict_id = digits_workspace
+    stored = ws.load_dictionary(dict_id)
+    est = SparseCodePooler(n_atoms=DIGITS_TRAIN["n_atoms"], record_shape=(8, 8),
+                           patch_size=DIGITS_TRAIN["patch_size"], stride=DIGITS_TRAIN["stride"],
+                           n_nonzero=DIGITS_TRAIN["coder_options"]["n_nonzero"],
+                           sample_patches=DIGITS_TRAIN["sample_patches"], seed=DIGITS_TRAIN["seed"])
+    images = ws.records("digits")[:]
+    est.fit(images.reshape(images.shape[0], 64))
+    np.testing.assert_array_equal(est.atoms_, stored.atoms)

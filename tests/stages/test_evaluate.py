@@ -5,13 +5,13 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from scipy import stats
-from sklearn.decomposition import PCA
 from sklearn.metrics import accuracy_score, balanced_accuracy_score, f1_score
 from sklearn.model_selection import StratifiedKFold, cross_val_predict
 from threadpoolctl import threadpool_limits
 
 from atomline.stages import evaluate
 from atomline.stages.errors import InputError
+from atomline.stages.kernels.classify import make_classifier
 from atomline.stages.kernels.scoring import confusion, paired_bootstrap, scores_from_confusion
 from atomline.stages.options import EvaluateOptions
 
@@ -73,24 +73,6 @@ def test_gate_refuses_negative_tolerance():
         evaluate.gate_decision({"difference": 0.0, "low": 0.0}, -0.1)
 
 
-def test_baseline_atoms():
-    rng = np.random.default_rng(4)
-    patches = rng.standard_normal((500, 12)) * np.linspace(3, 0.2, 12)
-    # Reference: scikit-learn's PCA components (up to sign).
-    pca = evaluate.baseline_atoms("pca", patches, 20)
-    ref = PCA(n_components=12).fit(patches).components_
-    assert pca.shape == (12, 12)
-    np.testing.assert_allclose(np.abs(np.sum(pca * ref, axis=1)), 1.0, atol=1e-8)
-    rand = evaluate.baseline_atoms("random_patches", patches, 20, seed=1)
-    assert rand.shape == (20, 12)
-    np.testing.assert_allclose(np.linalg.norm(rand, axis=1), 1.0)
-    # Every random atom is one of the patches, scaled.
-    unit = patches / np.linalg.norm(patches, axis=1, keepdims=True)
-    assert np.all(np.max(unit @ rand.T, axis=0) > 1 - 1e-12)
-    with pytest.raises(InputError, match="baseline"):
-        evaluate.baseline_atoms("wavelets", patches, 4)
-
-
 @pytest.fixture(scope="module")
 def digits_evaluation(digits_workspace):
     ws, dict_id = digits_workspace
@@ -123,7 +105,7 @@ def test_raw_baseline_equals_scikit_learn_cross_val_predict(digits_workspace, di
     y = ws.labels("digits")
     folds = StratifiedKFold(n_splits=5, shuffle=True, random_state=0)
     with threadpool_limits(1):  # small matrices: one BLAS thread, as the stage runs them
-        ref = cross_val_predict(evaluate.make_classifier("logistic", seed=0), X, y, cv=folds)
+        ref = cross_val_predict(make_classifier("logistic", seed=0), X, y, cv=folds)
     np.testing.assert_array_equal(arrays["pred_raw"], ref)
 
 

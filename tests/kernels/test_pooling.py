@@ -7,7 +7,7 @@ import pytest
 
 from atomline.stages.kernels.coding import SparseCodes
 from atomline.stages.errors import InputError
-from atomline.stages.pool import pool_codes, region_of_patches
+from atomline.stages.kernels.pooling import pool_codes, region_of_patches
 
 
 def _random_codes(n_records, P, k, q, seed):
