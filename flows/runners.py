@@ -28,10 +28,9 @@ from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
 
 from atomline.stages.checks import check_workers
 from atomline.stages.errors import InputError, problem
+from atomline.stages.options import RUNNERS, RunnerOptions
 
-__all__ = ["task_runner", "plan_batches", "blas_threads", "check_reachable", "RUNNERS"]
-
-RUNNERS = ("threads", "processes", "dask")
+__all__ = ["task_runner", "runner_for", "plan_batches", "blas_threads", "check_reachable", "RUNNERS"]
 
 
 def task_runner(kind: str = "threads", workers: int = 2, address: str | None = None,
@@ -75,6 +74,12 @@ def task_runner(kind: str = "threads", workers: int = 2, address: str | None = N
                    "dashboard_address": ":0"}
         return DaskTaskRunner(cluster_kwargs=dict(cluster, **(dask_options or {})))
     raise InputError(problem("runner", f"one of {RUNNERS}", repr(kind), "Pick a listed runner."))
+
+
+def runner_for(options: RunnerOptions):
+    """The Prefect task runner a :class:`~atomline.stages.options.RunnerOptions` describes
+    (the one door from the declared options to :func:`task_runner`)."""
+    return task_runner(options.runner, options.workers, options.address, options.dask_options)
 
 
 def check_reachable(workspace: str) -> None:

@@ -72,31 +72,40 @@ def _nightly_params(args: argparse.Namespace) -> dict:
                 **_evaluation_params(args), **_train_params(args), **_pool_params(args))
 
 
-def _with_runner(flow, args: argparse.Namespace):
-    from atomline.flows.runners import task_runner
+def _runner(args: argparse.Namespace):
+    """The command's :class:`~atomline.stages.options.RunnerOptions`, from its flags."""
+    from atomline.stages.options import RunnerOptions
 
-    return flow.with_options(task_runner=task_runner(args.runner, args.workers, args.dask_address))
+    from .parser import options_from_args
+
+    return options_from_args(RunnerOptions, args)
+
+
+def _with_runner(flow, args: argparse.Namespace):
+    """The flow with the task runner the command's runner flags describe (direct runs and
+    ``serve`` alike)."""
+    from atomline.flows.runners import runner_for
+
+    return flow.with_options(task_runner=runner_for(_runner(args)))
 
 
 # ---------------------------------------------------------------------------- checks
 # Each flow command's arguments, checked against the workspace before anything starts.
 def _check_demo(args):
-    from atomline.flows import preflight
-
-    preflight.check_runner(args.workers)
+    _runner(args)  # the runner options, checked as they are made (workers, kind, address)
 
 
 def _check_train(args):
     from atomline.flows import preflight
 
-    preflight.check_runner(args.workers)
+    _runner(args)  # the runner options, checked as they are made (workers, kind, address)
     preflight.check_train(args.workspace, args.name, **_train_params(args))
 
 
 def _check_encode(args):
     from atomline.flows import preflight
 
-    preflight.check_runner(args.workers)
+    _runner(args)  # the runner options, checked as they are made (workers, kind, address)
     preflight.check_encode(args.workspace, args.name, dict_id=args.dictionary, coder=args.coder,
                            coder_options=_coder_params(args))
 
@@ -104,26 +113,28 @@ def _check_encode(args):
 def _check_pool(args):
     from atomline.flows import preflight
 
-    preflight.check_runner(args.workers)
+    _runner(args)  # the runner options, checked as they are made (workers, kind, address)
     preflight.check_pool(args.workspace, args.name, dict_id=args.dictionary, regions=_one_or_list(args.regions))
 
 
 def _check_evaluate(args):
     from atomline.flows import preflight
 
-    preflight.check_runner(args.workers)
+    _runner(args)  # the runner options, checked as they are made (workers, kind, address)
     preflight.check_evaluate(args.workspace, args.name, dict_id=args.dictionary, **_evaluation_params(args))
 
 
 def _check_nightly(args):
     from atomline.flows import preflight
 
+    _runner(args)  # the runner options, checked as they are made (workers, kind, address)
     preflight.check_nightly(args.workspace, args.name, **_nightly_params(args))
 
 
 def _check_serve(args):
     from atomline.flows import preflight
 
+    _runner(args)  # the runner options, checked as they are made (workers, kind, address)
     preflight.check_cron(args.cron, args.timezone)
     preflight.check_nightly(args.workspace, args.name, **_nightly_params(args))
 
@@ -237,34 +248,42 @@ def _run_nightly(args):
     return report
 
 
-def serve_deployment(args: argparse.Namespace):
-    """The deployment ``atomline serve`` serves: the nightly flow, a cron schedule, parameters."""
+def _served(args: argparse.Namespace):
+    """The flow ``atomline serve`` serves, with the command's task runner, and its deployment
+    settings (name, cron schedule, parameters)."""
     from prefect.schedules import Cron
 
     from atomline.flows import nightly_flow
 
-    params = dict(_nightly_params(args), workspace=args.workspace, records=args.name)
+    params = dict(_nightly_params(args), workspace=args.workspace, records=args.name,
+                  batches_per_worker=args.batches_per_worker)
     params = {k: list(v) if isinstance(v, tuple) else v for k, v in params.items()}
-    return nightly_flow.to_deployment(
-        name=args.deployment or f"atomline-nightly-{args.name}",
-        schedule=Cron(args.cron, timezone=args.timezone),
-        parameters=params,
-        description=f"atomline nightly flow over data/{args.name} of {args.workspace}",
-        tags=["atomline"],
-    )
+    settings = dict(name=args.deployment or f"atomline-nightly-{args.name}",
+                    schedule=Cron(args.cron, timezone=args.timezone), parameters=params,
+                    description=f"atomline nightly flow over data/{args.name} of {args.workspace}",
+                    tags=["atomline"])
+    return _with_runner(nightly_flow, args), settings
+
+
+def serve_deployment(args: argparse.Namespace):
+    """The deployment ``atomline serve`` serves: the nightly flow, a cron schedule, parameters."""
+    flow, settings = _served(args)
+    return flow.to_deployment(**settings)
 
 
 def _run_serve(args):
-    deployment = serve_deployment(args)
+    flow, settings = _served(args)
+    deployment = flow.to_deployment(**settings)
     info = {"deployment": deployment.name, "flow": deployment.flow_name,
             "schedules": [{"cron": s.schedule.cron, "timezone": s.schedule.timezone}
                           for s in deployment.schedules or []],
             "parameters": deployment.parameters, "served": not args.dry_run}
     if not args.dry_run:
-        from prefect import serve
-
         print(_describe_serve(info), file=sys.stderr)
-        _until_interrupted(serve, deployment)  # blocks: runs the flow on schedule
+        # The flow object is served, not a deployment: Prefect's serve of a deployment runs
+        # the flow loaded from its entrypoint, with the decorator's default task runner, so
+        # --workers would only cut batches while two threads ran them.
+        _until_interrupted(lambda: flow.serve(**settings))  # blocks: runs the flow on schedule
     return info
 
 

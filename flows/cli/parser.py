@@ -6,7 +6,9 @@ Each sub-parser carries its command's ``run``, ``check`` and ``describe`` functi
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import os
+import typing
 from typing import Callable
 
 from .commands import (
@@ -131,8 +133,7 @@ def _parser() -> argparse.ArgumentParser:
     sp.add_argument("--dry-run", action="store_true",
                     help="build the deployment and print it, without serving")
     _nightly_options(sp)
-    sp.add_argument("--workers", type=int, default=os.cpu_count() or 1,
-                    help="parallel workers per run (default: %(default)s)")
+    _runner_options(sp)  # a served run uses the same runner a direct run would
 
     sp = command("history", _run_history, _describe_history,
                  "the accuracy of every evaluation and the promotion gate's decisions")
@@ -243,10 +244,51 @@ def _nightly_options(sp: argparse.ArgumentParser) -> None:
 
 
 def _runner_options(sp: argparse.ArgumentParser) -> None:
-    sp.add_argument("--runner", choices=("threads", "processes", "dask"), default="threads",
-                    help="Prefect task runner (default: %(default)s)")
-    sp.add_argument("--workers", type=int, default=os.cpu_count() or 1,
-                    help="parallel workers (default: the number of cores, %(default)s)")
-    sp.add_argument("--dask-address", help="scheduler address of an existing Dask cluster")
-    sp.add_argument("--batches-per-worker", type=int, default=4,
-                    help="batches of whole chunks per worker, one Prefect task each (default: %(default)s)")
+    from atomline.stages.options import RunnerOptions
+
+    add_option_flags(sp, RunnerOptions)
+
+
+def option_flag(field: dataclasses.Field) -> str:
+    """The command-line flag of an options field: declared, or ``--<name-with-dashes>``."""
+    return field.metadata.get("flag") or "--" + field.name.replace("_", "-")
+
+
+def add_option_flags(sp: argparse.ArgumentParser, cls: type) -> None:
+    """One flag per field of an options class (``atomline.stages.options``), made from its
+    declaration: flag name, type, default, choices and help. Dict fields are repeatable
+    ``KEY=VALUE`` flags; a bool is a switch that turns its default around."""
+    defaults = cls()
+    for field in dataclasses.fields(cls):
+        default = getattr(defaults, field.name)
+        help_text = field.metadata["help"]
+        kind = _kind(field)
+        if kind is bool:
+            sp.add_argument(option_flag(field), dest=field.name,
+                            action="store_false" if default else "store_true", help=help_text)
+        elif kind is dict:
+            sp.add_argument(option_flag(field), dest=field.name, action="append", metavar="KEY=VALUE",
+                            help=help_text)
+        else:
+            sp.add_argument(option_flag(field), dest=field.name, type=kind, default=default,
+                            choices=field.metadata["choices"],
+                            help=help_text + (" (default: %(default)s)" if default is not None else ""))
+
+
+def options_from_args(cls: type, args: argparse.Namespace):
+    """The options object of ``cls`` the parsed flags describe (checked as it is made)."""
+    from .commands import _key_values
+
+    values = {f.name: getattr(args, f.name) for f in dataclasses.fields(cls)}
+    for field in dataclasses.fields(cls):
+        if _kind(field) is dict:
+            values[field.name] = _key_values(values[field.name]) or None
+    return cls(**values)
+
+
+def _kind(field: dataclasses.Field) -> type:
+    """The value type of a field: ``int`` for ``int``, ``str`` for ``str | None``, ``dict``
+    for ``dict[str, Any] | None``."""
+    kind = field.type if isinstance(field.type, type) or typing.get_origin(field.type) is dict \
+        else next(t for t in typing.get_args(field.type) if t is not type(None))
+    return typing.get_origin(kind) or kind

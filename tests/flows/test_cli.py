@@ -346,3 +346,57 @@ def test_configured_server_that_does_not_answer(labelled):
         "expected a server answering there, found no answer ([Errno 111] Connection refused). Start "
         "that server (`prefect server start`), correct PREFECT_API_URL, or unset it so that the "
         "command starts a temporary server of its own.")
+
+
+def test_runner_flags_are_made_from_the_runner_options():
+    import dataclasses
+
+    from atomline.flows.cli.commands import _runner
+    from atomline.flows.cli.parser import option_flag
+    from atomline.stages.options import RunnerOptions
+
+    fields = {f.name: f for f in dataclasses.fields(RunnerOptions)}
+    commands = cli._parser()._subparsers._group_actions[0].choices
+    for command in ("demo", "train", "encode", "pool", "evaluate", "nightly", "serve"):
+        actions = {a.dest: a for a in commands[command]._actions if a.dest in fields}
+        assert set(actions) == set(fields), command  # every field has its flag, on every flow command
+        for name, action in actions.items():
+            assert action.option_strings == [option_flag(fields[name])]
+            declared = getattr(RunnerOptions(), name)
+            assert action.default == declared and action.choices == fields[name].metadata["choices"]
+    # Every flag maps back to its field.
+    args = cli._parser().parse_args(["encode", "ws", "vib", "--runner", "dask", "--workers", "3",
+                                     "--batches-per-worker", "2", "--dask-option", "local_directory=/tmp/x"])
+    assert _runner(args) == RunnerOptions(runner="dask", workers=3, batches_per_worker=2,
+                                          dask_options={"local_directory": "/tmp/x"})
+    args = cli._parser().parse_args(["serve", "ws", "vib", "--runner", "dask", "--dask-address", "tcp://s:8786"])
+    assert _runner(args) == RunnerOptions(runner="dask", address="tcp://s:8786")
+
+
+def test_an_address_without_the_dask_runner_is_refused_before_any_server(labelled, capsys, no_server):
+    status, _, err = _cli(capsys, "nightly", labelled, "vib", *PATCHES, "--dask-address", "tcp://s:8786")
+    assert status == 2
+    assert "address: expected a scheduler address only with runner 'dask'" in err
+
+
+@pytest.mark.usefixtures("prefect_harness")
+def test_serve_runs_the_flow_with_the_workers_asked_for(labelled, monkeypatch, capsys):
+    """``serve --workers 16``: each scheduled run cuts 16 workers' batches *and* runs them on
+    16 threads. Serving a deployment made Prefect run the flow loaded from its entrypoint,
+    which has the decorator's default runner (two threads)."""
+    from prefect.runner import Runner
+
+    started = []
+
+    async def record(self, *args, **kwargs):  # stands in for the serve loop, which never ends
+        started.append(self)
+
+    monkeypatch.setattr(Runner, "start", record)
+    assert cli.main(["serve", labelled, "vib", *PATCHES, "--atoms", "8", "--workers", "16"]) == 0
+    (runner,) = started
+    registry = runner._deployment_registry
+    served = [registry.get_flow(d) for d in registry.get_deployment_ids()]
+    assert len(served) == 1 and served[0] is not None, "runs would load the flow from its entrypoint"
+    assert served[0].name == "atomline-nightly"
+    # Prefect keeps the thread limit private; it is the pool size the runner starts.
+    assert served[0].task_runner._max_workers == 16
