@@ -14,6 +14,7 @@ import json
 import numpy as np
 import pytest
 
+from atomline.stages.errors import InputError
 from atomline.stages.kernels.learning import learn
 from atomline.stages.kernels.prep import Normaliser
 
@@ -121,3 +122,27 @@ def test_batch_learner_resumes_at_the_pass_it_lost():
     assert saved[-1]["passes_done"] == 3
     resumed = learn(_Passes(batches, None), 16, "batch", resume=saved[-1], **opts)
     np.testing.assert_array_equal(resumed.atoms, whole.atoms)
+
+
+def test_kmeans_resumes_from_a_checkpoint_without_a_generator_state():
+    # kmeans checkpoints written before the shared mini-batch driver carry no "rng";
+    # k-means draws only its start, so such a state still resumes to the same atoms.
+    batches = _batches()
+    common = dict(seed=3, checkpoint_every=3, replace_every=2)
+    whole = learn(iter(batches), 16, "kmeans", **common)
+    saved: list[dict] = []
+    with pytest.raises(Crash):
+        learn(_crashing(batches, at=10), 16, "kmeans",
+              checkpoint=lambda s: saved.append(copy.deepcopy(s)), **common)
+    state = {k: v for k, v in saved[-1].items() if k != "rng"}
+    resumed = learn(iter(batches[state["batches_seen"]:]), 16, "kmeans", resume=state, **common)
+    np.testing.assert_array_equal(resumed.atoms, whole.atoms)
+
+
+@pytest.mark.parametrize("method", ["online", "sgd", "subspaces"])
+def test_a_state_missing_a_driver_field_is_refused(method):
+    saved: list[dict] = []
+    learn(iter(_batches()), 16, method, seed=1, checkpoint=saved.append, checkpoint_every=4)
+    state = {k: v for k, v in saved[-1].items() if k != "window"}
+    with pytest.raises(InputError, match="missing \\['window'\\]"):
+        learn(iter(_batches()), 16, method, seed=1, resume=state)

@@ -13,8 +13,8 @@ default in memory, one pass of statistics; with ``batch_size ≥ n_rows`` and se
 passes it is the batch (Lloyd-type) iteration. Clusters left empty in a window, and
 duplicate atoms, are re-seeded with the worst-represented rows.
 
-Checkpoints hold ``atoms``, ``sums``, ``counts``, ``usage``, ``window``, ``objective``,
-``batches_seen``, ``t``, ``n_replaced``; resume follows the ``online`` module's rules.
+Checkpoints hold ``atoms``, ``sums``, ``counts`` and the shared driver's fields
+(:mod:`._driver`); resume follows the ``online`` module's rules.
 """
 
 from __future__ import annotations
@@ -25,24 +25,20 @@ import numpy as np
 
 from ._common import (
     Checkpoint,
-    CheckpointClock,
     LearnedDictionary,
     as_rows,
     atoms_from_rows,
     check_forget,
-    check_resume,
-    coherence,
     default_forget,
-    iter_batches,
     refresh_atoms,
-    too_few_rows,
     unit_rows,
 )
+from ._driver import DRIVER_KEYS, Step, run_minibatch
 
 __all__ = ["kmeans", "assign"]
 
-_STATE_KEYS = ("atoms", "sums", "counts", "usage", "window", "objective", "batches_seen",
-               "t", "n_replaced")
+#: No "rng": checkpoints written before the shared driver lack it (see ._driver).
+_STATE_KEYS = ("atoms", "sums", "counts", *DRIVER_KEYS)
 
 
 def assign(X: np.ndarray, W: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -108,68 +104,12 @@ def kmeans(
     """
     forget = check_forget(default_forget(source, batch_size, n_passes) if forget is None
                           else forget, allow_zero=True)
-    clock = CheckpointClock(checkpoint, checkpoint_every)
-    resume = check_resume(resume, "kmeans", _STATE_KEYS)
-    rng = np.random.default_rng(seed)
-    if resume is None:
-        W = None if init is None else unit_rows(as_rows(init, "init"))
-        S = counts = usage = window = None
-        objective: list[float] = []
-        batches_seen = t = n_replaced = 0
-    else:
-        W = np.array(resume["atoms"], dtype=np.float64)
-        S = np.array(resume["sums"], dtype=np.float64)
-        counts = np.array(resume["counts"], dtype=np.float64)
-        usage = np.array(resume["usage"], dtype=np.int64)
-        window = np.array(resume["window"], dtype=np.int64)
-        objective = [float(v) for v in resume["objective"]]
-        batches_seen, t = int(resume["batches_seen"]), int(resume["t"])
-        n_replaced = int(resume["n_replaced"])
-    if isinstance(source, np.ndarray) and W is None:
-        W = atoms_from_rows(as_rows(source), n_atoms, rng)
-
-    def state() -> dict:
-        return {"method": "kmeans", "atoms": W.copy(), "sums": S.copy(),
-                "counts": counts.copy(), "usage": usage.copy(), "window": window.copy(),
-                "objective": np.array(objective), "batches_seen": batches_seen, "t": t,
-                "n_replaced": n_replaced}
-
-    pending: list[np.ndarray] = []
-    for batch, closes in iter_batches(source, batch_size, n_passes, seed, skip=batches_seen):
-        batch = as_rows(batch, width=None if W is None else W.shape[1])
-        batches_seen += int(closes)
-        if W is None:
-            pending.append(batch)
-            pool = np.concatenate(pending)
-            if pool.shape[0] < n_atoms:
-                continue
-            W = atoms_from_rows(pool, n_atoms, rng)
-            batch, pending = pool, []
-        if S is None:
-            S, counts = np.zeros_like(W), np.zeros(n_atoms)
-            usage, window = np.zeros(n_atoms, np.int64), np.zeros(n_atoms, np.int64)
-        labels, coef = assign(batch, W)
-        energy = np.einsum("ij,ij->i", batch, batch) - coef * coef
-        objective.append(float(0.5 * energy.mean()))
-        t += 1
-        one_hot = np.zeros((batch.shape[0], n_atoms))
-        one_hot[np.arange(batch.shape[0]), labels] = coef
-        used = np.bincount(labels, minlength=n_atoms)
-        S = forget * S + one_hot.T @ batch
-        counts = forget * counts + used
-        usage += used
-        window += used
-        filled = np.linalg.norm(S, axis=1) > 0
-        W[filled] = unit_rows(S[filled])
-        if replace_every and t % replace_every == 0:
-            W, gone = refresh_atoms(W, window, batch, energy, dead_share, duplicate_cos)
-            S[gone], counts[gone] = 0.0, 0.0
-            n_replaced += int(gone.size)
-            window[:] = 0
-        if closes:
-            clock.tick(batches_seen, state)
-    if W is None or S is None:
-        too_few_rows(n_atoms)
+    learner = _Clusters(n_atoms, init, forget, dead_share, duplicate_cos)
+    run = run_minibatch(learner, source, n_atoms, method="kmeans", state_keys=_STATE_KEYS,
+                        batch_size=batch_size, n_passes=n_passes, replace_every=replace_every,
+                        seed=seed, checkpoint=checkpoint, checkpoint_every=checkpoint_every,
+                        resume=resume)
+    W = learner.W
     return LearnedDictionary(
         atoms=W,
         method="kmeans",
@@ -178,7 +118,52 @@ def kmeans(
                 "forget": float(forget), "replace_every": int(replace_every),
                 "dead_share": float(dead_share), "duplicate_cos": float(duplicate_cos),
                 "seed": int(seed)},
-        diagnostics={"objective": objective, "usage": usage.tolist(),
-                     "coherence": coherence(W), "replaced": n_replaced,
-                     "batches_seen": batches_seen},
+        diagnostics=run.diagnostics(W),
     )
+
+
+class _Clusters(Step):
+    """Forgetful sums ``S`` (k, d) of ``s x`` over each atom's rows, and row counts;
+    each atom ``W[j]`` is its normalised sum."""
+
+    def __init__(self, n_atoms, init, forget, dead_share, duplicate_cos) -> None:
+        self.n_units = n_atoms
+        self.W = None if init is None else unit_rows(as_rows(init, "init"))
+        self.S = self.counts = None
+        self.forget, self.dead_share, self.duplicate_cos = forget, dead_share, duplicate_cos
+
+    @property
+    def width(self) -> int | None:
+        return None if self.W is None else self.W.shape[1]
+
+    def start(self, rows, rng):
+        self.W = atoms_from_rows(rows, self.n_units, rng)
+
+    def begin(self):
+        self.S, self.counts = np.zeros_like(self.W), np.zeros(self.n_units)
+
+    def update(self, batch, t):
+        labels, coef = assign(batch, self.W)
+        energy = np.einsum("ij,ij->i", batch, batch) - coef * coef
+        one_hot = np.zeros((batch.shape[0], self.n_units))
+        one_hot[np.arange(batch.shape[0]), labels] = coef
+        used = np.bincount(labels, minlength=self.n_units)
+        self.S = self.forget * self.S + one_hot.T @ batch
+        self.counts = self.forget * self.counts + used
+        filled = np.linalg.norm(self.S, axis=1) > 0
+        self.W[filled] = unit_rows(self.S[filled])
+        return energy, used
+
+    def refresh(self, batch, energy, window):
+        self.W, gone = refresh_atoms(self.W, window, batch, energy, self.dead_share,
+                                     self.duplicate_cos)
+        self.S[gone], self.counts[gone] = 0.0, 0.0
+        return int(gone.size)
+
+    def state(self):
+        return {"atoms": self.W.copy(), "sums": self.S.copy(), "counts": self.counts.copy()}
+
+    def restore(self, state):
+        self.W = np.array(state["atoms"], dtype=np.float64)
+        self.S = np.array(state["sums"], dtype=np.float64)
+        self.counts = np.array(state["counts"], dtype=np.float64)

@@ -44,31 +44,24 @@ import numpy as np
 
 from ._common import (
     Checkpoint,
-    CheckpointClock,
     LearnedDictionary,
     as_rows,
     atoms_from_rows,
     atom_usage,
     bcd_sweep,
-    check_resume,
     coded,
-    coherence,
     check_forget,
     default_coder_options,
     default_forget,
-    generator_from_json,
-    generator_to_json,
-    iter_batches,
     refresh_atoms,
     residual_energy,
-    too_few_rows,
     unit_rows,
 )
+from ._driver import DRIVER_KEYS, Step, run_minibatch
 
 __all__ = ["online"]
 
-_STATE_KEYS = ("atoms", "A", "B", "usage", "window", "objective", "batches_seen", "t",
-               "n_replaced", "rng")
+_STATE_KEYS = ("atoms", "A", "B", *DRIVER_KEYS, "rng")
 
 
 def online(
@@ -141,73 +134,13 @@ def online(
     forget = default_forget(source, batch_size, n_passes) if forget is None else forget
     forget = check_forget(forget, allow_zero=True)
     coder_options = default_coder_options(coder, coder_options)
-    clock = CheckpointClock(checkpoint, checkpoint_every)
-    resume = check_resume(resume, "online", _STATE_KEYS)
-    if resume is None:
-        rng = np.random.default_rng(seed)
-        W = None if init is None else unit_rows(as_rows(init, "init"))
-        A = B = usage = window = None
-        objective: list[float] = []
-        batches_seen = t = n_replaced = 0
-    else:
-        rng = generator_from_json(resume["rng"])
-        W = np.array(resume["atoms"], dtype=np.float64)
-        A, B = np.array(resume["A"], dtype=np.float64), np.array(resume["B"], dtype=np.float64)
-        usage = np.array(resume["usage"], dtype=np.int64)
-        window = np.array(resume["window"], dtype=np.int64)
-        objective = [float(v) for v in resume["objective"]]
-        batches_seen, t = int(resume["batches_seen"]), int(resume["t"])
-        n_replaced = int(resume["n_replaced"])
-    if isinstance(source, np.ndarray) and W is None:
-        # In memory: start from distinct rows drawn over the whole array.
-        W = atoms_from_rows(as_rows(source), n_atoms, rng)
-
-    def state() -> dict:
-        return {"method": "online", "atoms": W.copy(), "A": A.copy(), "B": B.copy(),
-                "usage": usage.copy(), "window": window.copy(),
-                "objective": np.array(objective), "batches_seen": batches_seen, "t": t,
-                "n_replaced": n_replaced, "rng": generator_to_json(rng)}
-
-    pending: list[np.ndarray] = []
-    for batch, closes in iter_batches(source, batch_size, n_passes, seed, skip=batches_seen):
-        batch = as_rows(batch, width=None if W is None else W.shape[1])
-        batches_seen += int(closes)
-        if W is None:
-            # Streamed, no init: wait for n_atoms rows, then start from them.
-            pending.append(batch)
-            pool = np.concatenate(pending)
-            if pool.shape[0] < n_atoms:
-                continue
-            W = atoms_from_rows(pool, n_atoms, rng)
-            batch, pending = pool, []
-        if A is None:
-            A, B = np.zeros((n_atoms, n_atoms)), np.zeros((n_atoms, W.shape[1]))
-            usage = np.zeros(n_atoms, dtype=np.int64)
-            window = np.zeros(n_atoms, dtype=np.int64)
-        Z = coded(batch, W, coder, coder_options)
-        energy = residual_energy(batch, Z, W)
-        objective.append(float(0.5 * energy.mean()))
-        t += 1
-        decay = forget * (1.0 - 1.0 / t) ** warmup if t > 1 else forget
-        A *= decay
-        B *= decay
-        A += (Z.T @ Z).toarray()
-        B += Z.T @ batch
-        used = atom_usage(Z)
-        usage += used
-        window += used
-        W = bcd_sweep(W, A, B, n_sweeps)
-        if replace_every and t % replace_every == 0:
-            W, gone = refresh_atoms(W, window, batch, energy, dead_share, duplicate_cos)
-            A[gone, :] = 0.0
-            A[:, gone] = 0.0
-            B[gone] = 0.0
-            n_replaced += int(gone.size)
-            window[:] = 0
-        if closes:
-            clock.tick(batches_seen, state)
-    if W is None or A is None:
-        too_few_rows(n_atoms)
+    learner = _Online(n_atoms, init, coder, coder_options, forget, warmup, n_sweeps,
+                      dead_share, duplicate_cos)
+    run = run_minibatch(learner, source, n_atoms, method="online", state_keys=_STATE_KEYS,
+                        batch_size=batch_size, n_passes=n_passes, replace_every=replace_every,
+                        seed=seed, checkpoint=checkpoint, checkpoint_every=checkpoint_every,
+                        resume=resume)
+    W = learner.W
     return LearnedDictionary(
         atoms=W,
         method="online",
@@ -218,11 +151,57 @@ def online(
             "dead_share": float(dead_share), "duplicate_cos": float(duplicate_cos),
             "seed": int(seed),
         },
-        diagnostics={
-            "objective": objective,
-            "usage": usage.tolist(),
-            "coherence": coherence(W),
-            "replaced": n_replaced,
-            "batches_seen": batches_seen,
-        },
+        diagnostics=run.diagnostics(W),
     )
+
+
+class _Online(Step):
+    """Statistics ``A`` (k, k) and ``B`` (k, d) with the warm-up schedule, then
+    block-coordinate sweeps over the atoms ``W`` (k, d)."""
+
+    def __init__(self, n_atoms, init, coder, coder_options, forget, warmup, n_sweeps,
+                 dead_share, duplicate_cos) -> None:
+        self.n_units = n_atoms
+        self.W = None if init is None else unit_rows(as_rows(init, "init"))
+        self.A = self.B = None
+        self.coder, self.coder_options = coder, coder_options
+        self.forget, self.warmup, self.n_sweeps = forget, warmup, n_sweeps
+        self.dead_share, self.duplicate_cos = dead_share, duplicate_cos
+
+    @property
+    def width(self) -> int | None:
+        return None if self.W is None else self.W.shape[1]
+
+    def start(self, rows, rng):
+        self.W = atoms_from_rows(rows, self.n_units, rng)
+
+    def begin(self):
+        self.A = np.zeros((self.n_units, self.n_units))
+        self.B = np.zeros((self.n_units, self.W.shape[1]))
+
+    def update(self, batch, t):
+        Z = coded(batch, self.W, self.coder, self.coder_options)
+        energy = residual_energy(batch, Z, self.W)
+        decay = self.forget * (1.0 - 1.0 / t) ** self.warmup if t > 1 else self.forget
+        self.A *= decay
+        self.B *= decay
+        self.A += (Z.T @ Z).toarray()
+        self.B += Z.T @ batch
+        self.W = bcd_sweep(self.W, self.A, self.B, self.n_sweeps)
+        return energy, atom_usage(Z)
+
+    def refresh(self, batch, energy, window):
+        self.W, gone = refresh_atoms(self.W, window, batch, energy, self.dead_share,
+                                     self.duplicate_cos)
+        self.A[gone, :] = 0.0
+        self.A[:, gone] = 0.0
+        self.B[gone] = 0.0
+        return int(gone.size)
+
+    def state(self):
+        return {"atoms": self.W.copy(), "A": self.A.copy(), "B": self.B.copy()}
+
+    def restore(self, state):
+        self.W = np.array(state["atoms"], dtype=np.float64)
+        self.A = np.array(state["A"], dtype=np.float64)
+        self.B = np.array(state["B"], dtype=np.float64)

@@ -29,27 +29,20 @@ import numpy as np
 
 from ._common import (
     Checkpoint,
-    CheckpointClock,
     LearnedDictionary,
     as_rows,
     atoms_from_rows,
     atom_usage,
-    check_resume,
     coded,
-    coherence,
     default_coder_options,
-    generator_from_json,
-    generator_to_json,
-    iter_batches,
     refresh_atoms,
-    too_few_rows,
     unit_rows,
 )
+from ._driver import DRIVER_KEYS, Step, run_minibatch
 
 __all__ = ["sgd", "averaged_sgd"]
 
-_STATE_KEYS = ("atoms", "average", "usage", "window", "objective", "batches_seen", "t",
-               "n_replaced", "rng")
+_STATE_KEYS = ("atoms", "average", *DRIVER_KEYS, "rng")
 #: ``c`` of the iterate averaging; plain sgd keeps the (unused) average too, with this ``c``.
 _AVERAGE_DECAY = 3.0
 
@@ -154,71 +147,13 @@ def _run(
 ) -> LearnedDictionary:
     averaged = method == "averaged-sgd"
     coder_options = default_coder_options(coder, coder_options)
-    clock = CheckpointClock(checkpoint, checkpoint_every)
-    resume = check_resume(resume, method, _STATE_KEYS)
-    if resume is None:
-        rng = np.random.default_rng(seed)
-        W = None if init is None else unit_rows(as_rows(init, "init"))
-        avg = None if W is None else W.copy()
-        usage = window = None
-        objective: list[float] = []
-        batches_seen = t = n_replaced = 0
-    else:
-        rng = generator_from_json(resume["rng"])
-        W = np.array(resume["atoms"], dtype=np.float64)
-        avg = np.array(resume["average"], dtype=np.float64)
-        usage = np.array(resume["usage"], dtype=np.int64)
-        window = np.array(resume["window"], dtype=np.int64)
-        objective = [float(v) for v in resume["objective"]]
-        batches_seen, t = int(resume["batches_seen"]), int(resume["t"])
-        n_replaced = int(resume["n_replaced"])
-    if isinstance(source, np.ndarray) and W is None:
-        W = atoms_from_rows(as_rows(source), n_atoms, rng)
-        avg = W.copy()
-
-    def state() -> dict:
-        return {"method": method, "atoms": W.copy(), "average": avg.copy(),
-                "usage": usage.copy(), "window": window.copy(),
-                "objective": np.array(objective), "batches_seen": batches_seen, "t": t,
-                "n_replaced": n_replaced, "rng": generator_to_json(rng)}
-
-    pending: list[np.ndarray] = []
-    for batch, closes in iter_batches(source, batch_size, n_passes, seed, skip=batches_seen):
-        batch = as_rows(batch, width=None if W is None else W.shape[1])
-        batches_seen += int(closes)
-        if W is None:
-            pending.append(batch)
-            pool = np.concatenate(pending)
-            if pool.shape[0] < n_atoms:
-                continue
-            W = atoms_from_rows(pool, n_atoms, rng)
-            avg, batch, pending = W.copy(), pool, []
-        if usage is None:
-            usage = np.zeros(n_atoms, dtype=np.int64)
-            window = np.zeros(n_atoms, dtype=np.int64)
-        Z = coded(batch, W, coder, coder_options)
-        R = batch - Z @ W
-        energy = np.einsum("ij,ij->i", R, R)
-        objective.append(float(0.5 * energy.mean()))
-        t += 1
-        lipschitz = float(np.linalg.norm((Z.T @ Z).toarray(), 2))
-        if lipschitz > 0:
-            eta = step / np.sqrt(1.0 + t / step_decay_batches)
-            W = unit_rows(W + (eta / lipschitz) * (Z.T @ R))
-        used = atom_usage(Z)
-        usage += used
-        window += used
-        if replace_every and t % replace_every == 0:
-            W, gone = refresh_atoms(W, window, batch, energy, dead_share, duplicate_cos)
-            avg[gone] = W[gone]  # a replaced atom starts a new average
-            n_replaced += int(gone.size)
-            window[:] = 0
-        omega = (1.0 + average_decay) / (t + average_decay)
-        avg = (1.0 - omega) * avg + omega * W
-        if closes:
-            clock.tick(batches_seen, state)
-    if W is None or usage is None:
-        too_few_rows(n_atoms)
+    learner = _Projected(n_atoms, init, coder, coder_options, step, step_decay_batches,
+                         average_decay, dead_share, duplicate_cos)
+    run = run_minibatch(learner, source, n_atoms, method=method, state_keys=_STATE_KEYS,
+                        batch_size=batch_size, n_passes=n_passes, replace_every=replace_every,
+                        seed=seed, checkpoint=checkpoint, checkpoint_every=checkpoint_every,
+                        resume=resume)
+    W, avg = learner.W, learner.avg
     atoms = unit_rows(avg) if averaged else W
     params = {
         "coder": coder, "coder_options": coder_options, "batch_size": int(batch_size),
@@ -233,8 +168,59 @@ def _run(
         atoms=atoms,
         method=method,
         params=params,
-        diagnostics={"objective": objective, "usage": usage.tolist(),
-                     "coherence": coherence(atoms), "replaced": n_replaced,
-                     "batches_seen": batches_seen},
+        diagnostics=run.diagnostics(atoms),
     )
+
+
+class _Projected(Step):
+    """A gradient step on the atoms ``W`` (k, d), projected on the unit sphere, and the
+    weighted average ``avg`` of the iterates (kept by plain sgd too: one code path)."""
+
+    def __init__(self, n_atoms, init, coder, coder_options, step, step_decay_batches,
+                 average_decay, dead_share, duplicate_cos) -> None:
+        self.n_units = n_atoms
+        self.W = None if init is None else unit_rows(as_rows(init, "init"))
+        self.avg = None if self.W is None else self.W.copy()
+        self.coder, self.coder_options = coder, coder_options
+        self.step, self.step_decay_batches = step, step_decay_batches
+        self.average_decay = average_decay
+        self.dead_share, self.duplicate_cos = dead_share, duplicate_cos
+
+    @property
+    def width(self) -> int | None:
+        return None if self.W is None else self.W.shape[1]
+
+    def start(self, rows, rng):
+        self.W = atoms_from_rows(rows, self.n_units, rng)
+        self.avg = self.W.copy()
+
+    def begin(self):
+        pass  # no statistics: the step needs only the current batch
+
+    def update(self, batch, t):
+        Z = coded(batch, self.W, self.coder, self.coder_options)
+        R = batch - Z @ self.W
+        energy = np.einsum("ij,ij->i", R, R)
+        lipschitz = float(np.linalg.norm((Z.T @ Z).toarray(), 2))
+        if lipschitz > 0:
+            eta = self.step / np.sqrt(1.0 + t / self.step_decay_batches)
+            self.W = unit_rows(self.W + (eta / lipschitz) * (Z.T @ R))
+        return energy, atom_usage(Z)
+
+    def refresh(self, batch, energy, window):
+        self.W, gone = refresh_atoms(self.W, window, batch, energy, self.dead_share,
+                                     self.duplicate_cos)
+        self.avg[gone] = self.W[gone]  # a replaced atom starts a new average
+        return int(gone.size)
+
+    def settle(self, t):
+        omega = (1.0 + self.average_decay) / (t + self.average_decay)
+        self.avg = (1.0 - omega) * self.avg + omega * self.W
+
+    def state(self):
+        return {"atoms": self.W.copy(), "average": self.avg.copy()}
+
+    def restore(self, state):
+        self.W = np.array(state["atoms"], dtype=np.float64)
+        self.avg = np.array(state["average"], dtype=np.float64)
 

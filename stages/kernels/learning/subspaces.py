@@ -12,9 +12,8 @@ The atoms are returned grouped: rows ``l·s … (l+1)·s − 1`` are block ``l``
 is block OMP with one active group of ``s`` atoms (it picks the block of largest
 projection energy, the same rule as the assignment here, and projects on it).
 
-Checkpoints hold ``atoms``, ``scatter`` (L, d, d), ``usage``, ``window``,
-``objective``, ``batches_seen``, ``t``, ``n_replaced``, ``rng``; resume follows the
-``online`` module's rules.
+Checkpoints hold ``atoms``, ``scatter`` (L, d, d) and the shared driver's fields
+(:mod:`._driver`); resume follows the ``online`` module's rules.
 """
 
 from __future__ import annotations
@@ -26,24 +25,17 @@ import numpy as np
 from ...errors import InputError, problem
 from ._common import (
     Checkpoint,
-    CheckpointClock,
     LearnedDictionary,
-    as_rows,
     check_forget,
-    check_resume,
-    coherence,
     default_forget,
-    generator_from_json,
-    generator_to_json,
-    iter_batches,
     too_few_rows,
     worst_rows,
 )
+from ._driver import DRIVER_KEYS, Step, run_minibatch
 
 __all__ = ["subspaces"]
 
-_STATE_KEYS = ("atoms", "scatter", "usage", "window", "objective", "batches_seen", "t",
-               "n_replaced", "rng")
+_STATE_KEYS = ("atoms", "scatter", *DRIVER_KEYS, "rng")
 
 
 def subspaces(
@@ -86,83 +78,12 @@ def subspaces(
     n_blocks = n_atoms // s
     forget = check_forget(default_forget(source, batch_size, n_passes) if forget is None
                           else forget, allow_zero=True)
-    clock = CheckpointClock(checkpoint, checkpoint_every)
-    resume = check_resume(resume, "subspaces", _STATE_KEYS)
-    if resume is None:
-        rng = np.random.default_rng(seed)
-        U = C = usage = window = None   # U: (L, s, d) bases; C: (L, d, d) scatters
-        objective: list[float] = []
-        batches_seen = t = n_replaced = 0
-    else:
-        rng = generator_from_json(resume["rng"])
-        U = np.array(resume["atoms"], dtype=np.float64).reshape(n_blocks, s, -1)
-        C = np.array(resume["scatter"], dtype=np.float64)
-        usage = np.array(resume["usage"], dtype=np.int64)
-        window = np.array(resume["window"], dtype=np.int64)
-        objective = [float(v) for v in resume["objective"]]
-        batches_seen, t = int(resume["batches_seen"]), int(resume["t"])
-        n_replaced = int(resume["n_replaced"])
-    if isinstance(source, np.ndarray) and U is None:
-        rows = as_rows(source)
-        U = _seed_blocks(rows, n_blocks, s, rng)
-
-    def state() -> dict:
-        return {"method": "subspaces", "atoms": U.reshape(n_atoms, -1).copy(),
-                "scatter": C.copy(), "usage": usage.copy(), "window": window.copy(),
-                "objective": np.array(objective), "batches_seen": batches_seen, "t": t,
-                "n_replaced": n_replaced, "rng": generator_to_json(rng)}
-
-    pending: list[np.ndarray] = []
-    for batch, closes in iter_batches(source, batch_size, n_passes, seed, skip=batches_seen):
-        batch = as_rows(batch, width=None if U is None else U.shape[2])
-        batches_seen += int(closes)
-        if U is None:
-            pending.append(batch)
-            pool = np.concatenate(pending)
-            if pool.shape[0] < n_atoms:
-                continue
-            U, batch, pending = _seed_blocks(pool, n_blocks, s, rng), pool, []
-        d = U.shape[2]
-        if s > d:
-            raise InputError(problem("block_size", f"at most d = {d}", str(s),
-                                     "Use smaller subspaces."))
-        if C is None:
-            C = np.zeros((n_blocks, d, d))
-            usage, window = np.zeros(n_blocks, np.int64), np.zeros(n_blocks, np.int64)
-        P = (batch @ U.reshape(n_atoms, d).T) ** 2          # (m, k) squared projections
-        captured = P.reshape(-1, n_blocks, s).sum(axis=2)  # (m, L)
-        labels = captured.argmax(axis=1)
-        energy = np.einsum("ij,ij->i", batch, batch) - captured[np.arange(batch.shape[0]),
-                                                                 labels]
-        objective.append(float(0.5 * energy.mean()))
-        t += 1
-        C *= forget
-        # Scatter per block: sort rows by block and add one Gram product per block.
-        order = np.argsort(labels, kind="stable")
-        bounds = np.searchsorted(labels[order], np.arange(n_blocks + 1))
-        for l in np.flatnonzero(np.diff(bounds)):  # occupied blocks, not rows
-            Xl = batch[order[bounds[l] : bounds[l + 1]]]
-            C[l] += Xl.T @ Xl
-        used = np.diff(bounds)
-        usage += used
-        window += used
-        lam, V = np.linalg.eigh(C)                         # batched over blocks, ascending
-        filled = lam[:, -1] > 0
-        U[filled] = np.swapaxes(V[filled][:, :, ::-1][:, :, :s], 1, 2)
-        if replace_every and t % replace_every == 0:
-            empty = np.flatnonzero(window == 0)
-            if empty.size:
-                worst = worst_rows(batch, energy, empty.size * s)
-                n_new = worst.shape[0] // s
-                if n_new:
-                    U[empty[:n_new]] = _orthonormal_blocks(worst[: n_new * s], n_new, s)
-                    C[empty[:n_new]] = 0.0
-                    n_replaced += n_new
-            window[:] = 0
-        if closes:
-            clock.tick(batches_seen, state)
-    if U is None or C is None:
-        too_few_rows(n_atoms)
+    learner = _Subspaces(n_blocks, s, forget)
+    run = run_minibatch(learner, source, n_atoms, method="subspaces", state_keys=_STATE_KEYS,
+                        batch_size=batch_size, n_passes=n_passes, replace_every=replace_every,
+                        seed=seed, checkpoint=checkpoint, checkpoint_every=checkpoint_every,
+                        resume=resume)
+    U, usage = learner.U, run.usage
     atoms = _signed(U.reshape(n_atoms, -1))
     return LearnedDictionary(
         atoms=atoms,
@@ -172,10 +93,71 @@ def subspaces(
                 "n_blocks": n_blocks, "batch_size": int(batch_size),
                 "n_passes": int(n_passes), "forget": float(forget),
                 "replace_every": int(replace_every), "seed": int(seed)},
-        diagnostics={"objective": objective, "usage": np.repeat(usage, s).tolist(),
-                     "block_usage": usage.tolist(), "coherence": coherence(atoms),
-                     "replaced": n_replaced, "batches_seen": batches_seen},
+        # The driver counts rows per block; each atom of a block is used by its rows.
+        diagnostics={**run.diagnostics(atoms), "usage": np.repeat(usage, s).tolist(),
+                     "block_usage": usage.tolist()},
     )
+
+
+class _Subspaces(Step):
+    """Bases ``U`` (L, s, d) and forgetful scatters ``C`` (L, d, d), one per block; the
+    driver's usage counts rows per block."""
+
+    def __init__(self, n_blocks, s, forget) -> None:
+        self.n_units, self.s, self.forget = n_blocks, s, forget
+        self.U = self.C = None
+
+    @property
+    def width(self) -> int | None:
+        return None if self.U is None else self.U.shape[2]
+
+    def start(self, rows, rng):
+        self.U = _seed_blocks(rows, self.n_units, self.s, rng)
+
+    def begin(self):
+        d = self.U.shape[2]
+        if self.s > d:
+            raise InputError(problem("block_size", f"at most d = {d}", str(self.s),
+                                     "Use smaller subspaces."))
+        self.C = np.zeros((self.n_units, d, d))
+
+    def update(self, batch, t):
+        n_blocks, s, U, C = self.n_units, self.s, self.U, self.C
+        P = (batch @ U.reshape(n_blocks * s, -1).T) ** 2    # (m, k) squared projections
+        captured = P.reshape(-1, n_blocks, s).sum(axis=2)  # (m, L)
+        labels = captured.argmax(axis=1)
+        energy = np.einsum("ij,ij->i", batch, batch) - captured[np.arange(batch.shape[0]),
+                                                                 labels]
+        C *= self.forget
+        # Scatter per block: sort rows by block and add one Gram product per block.
+        order = np.argsort(labels, kind="stable")
+        bounds = np.searchsorted(labels[order], np.arange(n_blocks + 1))
+        for l in np.flatnonzero(np.diff(bounds)):  # occupied blocks, not rows
+            Xl = batch[order[bounds[l] : bounds[l + 1]]]
+            C[l] += Xl.T @ Xl
+        lam, V = np.linalg.eigh(C)                         # batched over blocks, ascending
+        filled = lam[:, -1] > 0
+        U[filled] = np.swapaxes(V[filled][:, :, ::-1][:, :, :s], 1, 2)
+        return energy, np.diff(bounds)
+
+    def refresh(self, batch, energy, window):
+        empty = np.flatnonzero(window == 0)
+        if not empty.size:
+            return 0
+        worst = worst_rows(batch, energy, empty.size * self.s)
+        n_new = worst.shape[0] // self.s
+        if n_new:
+            self.U[empty[:n_new]] = _orthonormal_blocks(worst[: n_new * self.s], n_new, self.s)
+            self.C[empty[:n_new]] = 0.0
+        return n_new
+
+    def state(self):
+        return {"atoms": self.U.reshape(self.n_units * self.s, -1).copy(),
+                "scatter": self.C.copy()}
+
+    def restore(self, state):
+        self.U = np.array(state["atoms"], dtype=np.float64).reshape(self.n_units, self.s, -1)
+        self.C = np.array(state["scatter"], dtype=np.float64)
 
 
 def _seed_blocks(rows: np.ndarray, n_blocks: int, s: int, rng: np.random.Generator) -> np.ndarray:
