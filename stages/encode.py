@@ -23,7 +23,7 @@ from prefect.cache_policies import NO_CACHE
 from threadpoolctl import threadpool_limits
 
 from .checks import check_record_shape, resolve_coder
-from .kernels.coding import code, code_outputs, code_width, gram
+from .kernels.coding import code, code_outputs, code_width
 from .errors import BadChunk, FingerprintMismatch, InputError, problem, retry_if_transient
 from .kernels.prep import Normaliser, PatchGeometry
 from .options import EncodeOptions
@@ -177,8 +177,6 @@ def encode_chunks(
     coder = attrs["params"]["coder"]
     options = _resolve_options(ws, dict_id, coder, dict(attrs["params"]["coder_options"]))
     atoms = stored.atoms.astype(arr.dtype)
-    if coder == "omp":
-        options.setdefault("gram", gram(atoms))  # the same for every chunk: compute once
     P = attrs["patches_per_record"]
     width = attrs["width"]
     encoded = skipped = bad = n_records = 0

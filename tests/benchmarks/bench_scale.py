@@ -86,7 +86,7 @@ def _bare_worker(args):
     barrier, start, n, atoms, prep_attrs, prep_arrays, blas, chunk, out = args
     from threadpoolctl import threadpool_limits
 
-    from atomline.stages.kernels.coding import code, gram
+    from atomline.stages.kernels.coding import code
     from atomline.stages.kernels.prep import Normaliser
 
     normaliser = Normaliser.from_stored(prep_attrs, prep_arrays)
@@ -94,12 +94,11 @@ def _bare_worker(args):
     # of BLOCK), and without the (n, 5, 64) float64 temporary of one big block.
     X = np.concatenate([synthetic_block(s, min(BLOCK, start + n - s)) for s in range(start, start + n, BLOCK)])
     atoms = atoms.astype(X.dtype)
-    G = gram(atoms)
     barrier.wait()
     t0, c0 = time.perf_counter(), time.process_time()
     with threadpool_limits(limits=blas):
         for s in range(0, n, chunk):
-            code(normaliser.apply(X[s : s + chunk]), atoms, "omp", n_nonzero=NONZERO, gram=G)
+            code(normaliser.apply(X[s : s + chunk]), atoms, "omp", n_nonzero=NONZERO)
     out.put((time.perf_counter() - t0, time.process_time() - c0))
 
 
@@ -201,7 +200,7 @@ def thread_scaling_of_parts(url: str, name: str, dict_id: str, n_chunks: int = 2
     from threadpoolctl import threadpool_limits
 
     from atomline.stages import encode
-    from atomline.stages.kernels.coding import code, gram
+    from atomline.stages.kernels.coding import code
     from atomline.stages.kernels.prep import Normaliser, PatchGeometry
     from atomline.stages.workspace import Workspace
 
@@ -209,18 +208,17 @@ def thread_scaling_of_parts(url: str, name: str, dict_id: str, n_chunks: int = 2
     arr, stored = ws.records(name), ws.load_dictionary(dict_id)
     normaliser = Normaliser.from_stored(stored.attrs["preprocessing"], stored.arrays)
     atoms = stored.atoms.astype(arr.dtype)
-    G = gram(atoms)
     encode.prepare_encode(ws, name, dict_id, overwrite=True)
     out = ws.output(encode.codes_path(dict_id, name))
     geometry = PatchGeometry.from_attrs(out.attrs["geometry"])
     rows = int(arr.chunks[0])
     blocks = [ws.read_chunk(name, c, arr) for c in range(n_chunks)]
-    coded = [code(normaliser.apply(geometry.extract(b)), atoms, "omp", n_nonzero=NONZERO, gram=G)
+    coded = [code(normaliser.apply(geometry.extract(b)), atoms, "omp", n_nonzero=NONZERO)
              for b in blocks]
     parts = {
         "read": lambda c: ws.read_chunk(name, c, arr),
         "prepare": lambda c: normaliser.apply(geometry.extract(blocks[c])),
-        "code": lambda c: code(blocks[c], atoms, "omp", n_nonzero=NONZERO, gram=G),
+        "code": lambda c: code(blocks[c], atoms, "omp", n_nonzero=NONZERO),
         "commit": lambda c: out.commit(c, slice(c * rows, (c + 1) * rows), {
             "index": coded[c].index.astype(np.int32), "value": coded[c].value.astype(np.float32),
             "count": coded[c].count.astype(np.int32)}),

@@ -81,7 +81,9 @@ Implementation notes
 Per-row algorithms run inside numba-compiled kernels (``cache=True``: compiled once per
 machine, about a second per kernel and dtype, then loaded from the user cache; see
 ``_numba_cache``), single threaded so that worker processes × threads stay within the cores,
-and without the GIL so that worker threads of one process code their batches at once. The one product
+and without the GIL so that worker threads of one process code their batches at once. The Gram
+matrix of a dictionary is computed once and reused by every later :func:`code` call with
+the same atoms (``_common.cached_gram``), so callers need not pass ``gram``. The one product
 with the dictionary goes through :func:`._common.correlations`, which calls BLAS with a
 fixed block shape so that a row's result never depends on the other rows of its chunk.
 """
@@ -100,7 +102,7 @@ from ._numba_cache import use_user_cache_dir
 use_user_cache_dir()
 
 from .._records import Option, keyword_options, option_list, refuse_unknown_options  # noqa: E402
-from ._common import SparseCodes, check_problem, gram  # noqa: E402
+from ._common import SparseCodes, cached_gram, check_problem, gram  # noqa: E402
 from .block_omp import block_omp, block_omp_width
 from .cosamp import cosamp, cosamp_width
 from .fista import fista
@@ -278,7 +280,9 @@ def code(X: np.ndarray, atoms: np.ndarray, method: str = "omp", **options: Any) 
     method : str
         A key of :data:`METHODS`.
     **options
-        The method's own options (see the module docstring).
+        The method's own options (see the module docstring). Coders that take ``gram``
+        get the dictionary's Gram matrix without being given it, computed once per
+        dictionary (by content) and kept for the next calls.
 
     Returns
     -------
@@ -294,6 +298,8 @@ def code(X: np.ndarray, atoms: np.ndarray, method: str = "omp", **options: Any) 
     if method not in METHODS:
         raise _unknown(method)
     X, atoms = check_problem(X, atoms)
+    if METHODS[method].uses_gram and options.get("gram") is None:
+        options["gram"] = cached_gram(atoms)
     try:
         return METHODS[method].run(X, atoms, **options)
     except TypeError as exc:  # unknown or missing keyword: say which method wanted what

@@ -9,6 +9,9 @@ which is how a per-row algorithm runs at the speed of the hardware.
 
 from __future__ import annotations
 
+import hashlib
+import threading
+from collections import OrderedDict
 from dataclasses import dataclass
 
 import numpy as np
@@ -202,6 +205,49 @@ def gram(atoms: np.ndarray) -> np.ndarray:
         last bit between one and two threads) and on every CPU.
     """
     return product(atoms, atoms.T)
+
+
+#: Gram matrices of the dictionaries coded most recently, by content (:func:`cached_gram`).
+_GRAMS: "OrderedDict[tuple, np.ndarray]" = OrderedDict()
+_GRAMS_LOCK = threading.Lock()
+#: Dictionaries whose Gram matrix is kept (an encode run codes with one; a few more cover
+#: an evaluation's baselines and the float32/float64 casts).
+_GRAMS_KEPT = 8
+
+
+def cached_gram(atoms: np.ndarray) -> np.ndarray:
+    """:func:`gram` of a dictionary, computed once per dictionary and reused.
+
+    The encode stage codes chunk after chunk with the same atoms; the Gram matrix costs
+    ``k²d`` multiply-adds by the fixed-order product, a share of every chunk's work that
+    need not be repeated. Entries are keyed by the atoms' dtype, shape and a digest of their
+    bytes — equal atoms share an entry however they were loaded, changed atoms are a new
+    dictionary — and the least recently used is dropped beyond :data:`_GRAMS_KEPT`.
+
+    Parameters
+    ----------
+    atoms : ndarray of shape (k, d), float32 or float64
+
+    Returns
+    -------
+    ndarray of shape (k, k), the dtype of ``atoms``
+        A fresh copy of the same bytes as ``gram(atoms)`` (so row invariance holds and no
+        caller can change the kept matrix).
+    """
+    atoms = np.ascontiguousarray(atoms)
+    key = (atoms.dtype.str, atoms.shape, hashlib.blake2b(atoms.data, digest_size=16).digest())
+    with _GRAMS_LOCK:
+        kept = _GRAMS.get(key)
+        if kept is not None:
+            _GRAMS.move_to_end(key)
+            return kept.copy()
+    G = gram(atoms)  # outside the lock: threads coding other dictionaries are not held up
+    with _GRAMS_LOCK:
+        _GRAMS[key] = G
+        _GRAMS.move_to_end(key)
+        while len(_GRAMS) > _GRAMS_KEPT:
+            _GRAMS.popitem(last=False)
+    return G.copy()
 
 
 def lipschitz(atoms: np.ndarray) -> float:
