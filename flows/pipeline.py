@@ -29,15 +29,16 @@ from atomline.stages.checks import check_retrain, promoted_or_named
 from atomline.stages.drift import detect_drift
 from atomline.stages.errors import InputError, problem
 from atomline.stages.encode import codes_path, encode_task, prepare_encode
-from atomline.stages.evaluate import (BASELINES, DEFAULT_CURVE, compare_evaluations, evaluate_task,
-                                      gate_decision)
+from atomline.stages.evaluate import BASELINES, DEFAULT_CURVE, evaluate_task
+from atomline.stages.gate import (OUTCOMES, STATE_NAMES, compare, gate_decision, nightly_run_key,
+                                  outcome_without_comparison, record_decision, recorded_decision)
 from atomline.stages.report import render_report
 from atomline.stages.kernels.scoring import SCORES
-from atomline.stages.options import (DriftOptions, EncodeOptions, EvaluateOptions, PoolOptions,
+from atomline.stages.options import (RETRAIN, DriftOptions, EncodeOptions, EvaluateOptions, PoolOptions,
                                      TrainOptions)
 from atomline.stages.pool import features_path, pool_task, prepare_pool
 from atomline.stages.train import train_task
-from atomline.stages.workspace import Workspace, fingerprint_params
+from atomline.stages.workspace import Workspace
 
 from .artifacts import ChunkProgress, artifact_key, publish_evaluation
 from .runners import blas_threads, check_reachable, plan_batches, task_runner
@@ -47,33 +48,6 @@ render_task = task(render_report, name="render-pictures", cache_policy=NO_CACHE)
 
 __all__ = ["train_flow", "encode_flow", "pool_flow", "evaluate_flow", "nightly_flow", "OUTCOMES",
            "STATE_NAMES", "RETRAIN"]
-
-#: What a nightly run can end with.
-OUTCOMES = {
-    "first": "no dictionary was promoted yet; the candidate is promoted",
-    "promoted": "the candidate is not worse than the promoted one beyond the tolerance, "
-                "and its interval agrees; promoted",
-    "unchanged": "the candidate is the promoted dictionary (same inputs); nothing to do",
-    "inconclusive": "the candidate is within the tolerance but its interval reaches below it; "
-                    "not promoted",
-    "regression": "the candidate scored worse than the promoted one beyond the tolerance; "
-                  "not promoted",
-    "steady": "no drift beyond the threshold; no retrain, the promoted dictionary's features "
-              "were brought up to date",
-    "kept": "retraining was off: the promoted dictionary was kept and only records it had "
-            "not encoded yet were encoded and pooled",
-}
-#: The name of the state a nightly run ends in, per outcome.
-STATE_NAMES = {"first": "Promoted", "promoted": "Promoted", "unchanged": "Unchanged",
-               "inconclusive": "Inconclusive", "regression": "Regression", "steady": "Steady",
-               "kept": "Kept"}
-
-#: When the nightly flow trains a candidate dictionary (its ``retrain`` option).
-RETRAIN = {
-    "always": "train a candidate on the current archive every run (appended rows change it)",
-    "if-missing": "train only when no dictionary is promoted; otherwise keep the promoted one",
-    "never": "never train; keep the promoted dictionary (there must be one)",
-}
 
 
 def _summarise(results: list[dict], prepared: dict, key: str, wall: float) -> dict:
@@ -239,11 +213,11 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
     (``accuracy``, ``balanced_accuracy`` or ``macro_f1``) minus the promoted one's and
     ``[low, high]`` its paired-bootstrap 95 % interval. Outcome (``OUTCOMES``):
     ``regression`` when ``d < -tolerance``; ``promoted`` when ``d >= -tolerance`` and
-    ``low >= -tolerance``; ``inconclusive`` otherwise (see ``evaluate.gate_decision``).
+    ``low >= -tolerance``; ``inconclusive`` otherwise (see ``stages.gate``).
     The pointer moves only after the candidate's features and evaluation are complete.
     Every decision is appended to the workspace (``Workspace.decisions``).
 
-    **Reruns.** A decision is stored with the run's key (:func:`nightly_run_key`: the
+    **Reruns.** A decision is stored with the run's key (``gate.nightly_run_key``: the
     records' and labels' content and the options that can change the outcome). A run
     whose key was decided already — a rerun after a kill at any point, or a run on
     unchanged inputs — reports that decision (``already_decided`` holds its id) instead
@@ -301,7 +275,7 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
         retrain_on_drift=retrain_on_drift,
         drift_since=drift_since, drift_threshold=drift_threshold, on_bad_chunk=on_bad_chunk,
         retrain=retrain))
-    recorded = _recorded_decision(ws, run_key)
+    recorded = recorded_decision(ws, run_key)
     # A run with these inputs was decided already (and maybe killed before it ended): replay
     # it against the dictionary that was promoted when it started. Every step below finds
     # its finished work (dictionary, chunks, evaluations, pictures) and redoes nothing.
@@ -347,85 +321,31 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
     cand_eval = evaluate_task(workspace, records, candidate_id, evaluation, labels=labels, tag="candidate")
     report.update(candidate_id=candidate_id, train=trained, encode=encoded, pool=pooled,
                   candidate=cand_eval)
-    if previous is None:
-        outcome = "first"
-    elif previous == candidate_id:
-        outcome = "unchanged"
-    else:
+    outcome = outcome_without_comparison(previous, candidate_id)
+    if outcome is None:
         features_for(previous)
         prev_eval = evaluate_task(workspace, records, previous,
                                   dataclasses.replace(evaluation, baselines=(), learning_curve=()),
                                   labels=labels, tag="promoted")
-        comparison = compare_evaluations(workspace, cand_eval["run_id"], prev_eval["run_id"],
-                                         n_boot=n_boot, seed=seed)
-        report.update(promoted=prev_eval, gate=comparison[metric])
-        outcome = gate_decision(comparison[metric], tolerance)
+        verdict = compare(workspace, cand_eval["run_id"], prev_eval["run_id"], metric=metric,
+                          tolerance=tolerance, n_boot=n_boot, seed=seed)
+        report.update(promoted=prev_eval, gate=verdict["gate"])
+        outcome = verdict["outcome"]
     report["outcome"] = outcome
     if pictures:
         report["pictures"] = render_task(workspace, cand_eval["run_id"], class_names)
     return _finish(workspace, records, report, fail_on_regression, run_key, recorded)
 
 
-def nightly_run_key(ws: Workspace, records: str, options: dict) -> str:
-    """What a nightly run decides on, as a digest: the records' and labels' content and
-    every option that can change the decision (not workers, leases, pictures or alerts).
-
-    The promoted dictionary is not part of it: a run killed after moving the pointer must
-    find its own decision when rerun (see :func:`_recorded_decision`).
-    """
-    labels = options.get("labels") or records
-    return fingerprint_params({
-        "records": records, "records_fingerprint": ws.records_fingerprint(records),
-        "labels_fingerprint": ws.labels_fingerprint(labels) if ws.has_labels(labels) else None,
-        "options": options})
-
-
-def _recorded_decision(ws: Workspace, run_key: str) -> dict | None:
-    """The decision recorded for ``run_key`` if it still describes the workspace.
-
-    It does while the pointer is where that run found it or where it put it; a pointer
-    moved since by someone else makes it stale, and the run decides afresh.
-    """
-    recorded = ws.find_decision(run_key)
-    if recorded is None or ws.promoted not in (recorded["previous_id"], recorded["promoted_id"]):
-        return None
-    return recorded
-
-
 def _finish(workspace: str, records: str, report: dict, fail_on_regression: bool, run_key: str,
             recorded: dict | None) -> State:
-    """Record the decision, promote when due, publish artifacts, and end in a named state.
-
-    The decision is written (``complete`` last) before the pointer moves, and the move is
-    checked before either: a run killed between them finds its decision when rerun and
-    only moves the pointer. A recorded decision is reported as it was, never decided again.
-    """
+    """Record the decision and promote when due (``gate.record_decision``), publish
+    artifacts, and end in a named state."""
     logger = get_run_logger()
     ws = Workspace.open(workspace)
     cand = report["candidate"]
-    if recorded:
-        report["outcome"] = recorded["outcome"]
-        report["decision_id"] = report["already_decided"] = recorded["decision_id"]
+    report.update(record_decision(ws, records, report, run_key=run_key, recorded=recorded))
     outcome = report["outcome"]
-    promoting = outcome in ("first", "promoted")
-    if promoting:
-        # The dictionary, its features and this evaluation of them must be complete and
-        # consistent; checked before anything is recorded.
-        ws.check_promotion(report["candidate_id"], evaluation=cand["run_id"])
-    if not recorded:
-        report["decision_id"] = ws.append_decision({
-            "records": records, "outcome": outcome, "candidate_id": report["candidate_id"],
-            "previous_id": report["previous_id"],
-            "promoted_id": report["candidate_id"] if promoting else report["previous_id"],
-            "promoted": promoting, "metric": report["metric"],
-            "tolerance": report["tolerance"], "gate": report["gate"], "drift": report["drift"],
-            "candidate_run": cand["run_id"] if cand else None,
-            "promoted_run": report["promoted"]["run_id"] if report["promoted"] else None,
-            "run_key": run_key,
-        })
-    if promoting and ws.promoted != report["candidate_id"]:
-        ws.promote(report["candidate_id"], evaluation=cand["run_id"])
-    report["promoted_id"] = ws.promoted
     message = f"{outcome}: {OUTCOMES[outcome]}"
     if recorded:
         message += f" (already decided by {recorded['decision_id']} on {recorded['created']})"

@@ -40,8 +40,8 @@ Each evaluation is appended to ``evaluations/<run-id>`` (never rewritten) with w
 dictionary, coder, pooling and data it measured, and its out-of-fold predictions, so two
 evaluations on the same rows can be compared later. It is keyed by what it measures
 (:func:`evaluation_key`): a rerun with the same inputs returns the complete evaluation
-with that key (``reused`` in the manifest) instead of adding a second one (:func:`compare_evaluations`, used by
-the nightly promotion gate, :func:`gate_decision`).
+with that key (``reused`` in the manifest) instead of adding a second one. The nightly
+promotion gate compares two such evaluations (:mod:`.gate`).
 
 ``evaluate_task`` is :func:`evaluate_features` as a Prefect task.
 """
@@ -54,7 +54,6 @@ from prefect.cache_policies import NO_CACHE
 from threadpoolctl import threadpool_limits
 
 from .encode import codes_path
-from .checks import check_tolerance
 from .errors import BadChunk, InputError, problem
 from .pool import features_path
 from .kernels.classify import (class_report, cross_predict, curve_points, curve_report,
@@ -65,8 +64,7 @@ from .kernels.scoring import confusion, paired_bootstrap, scores_from_confusion
 from .options import BASELINES, CLASSIFIERS, DEFAULT_CURVE, EvaluateOptions
 from .workspace import Workspace, fingerprint_params, iter_row_chunks
 
-__all__ = ["evaluate_features", "evaluate_task", "evaluation_key", "compare_evaluations",
-           "gate_decision", "CLASSIFIERS", "BASELINES", "GATE_OUTCOMES"]
+__all__ = ["evaluate_features", "evaluate_task", "evaluation_key", "CLASSIFIERS", "BASELINES"]
 
 # CLASSIFIERS, BASELINES and DEFAULT_CURVE are declared with the options; on the learning
 # curve the full share is the main result and is added to the curve.
@@ -244,82 +242,6 @@ def _manifest(attrs: dict, *, reused: bool) -> dict:
                 "versus": attrs["versus"], "learning_curve": attrs["learning_curve"], "reused": reused}
     manifest.update(attrs["metrics"])
     return manifest
-
-
-def compare_evaluations(
-    workspace: Workspace | str, run_a: str, run_b: str, *, n_boot: int = 2000, seed: int = 0,
-) -> dict[str, dict[str, float]]:
-    """Paired bootstrap of the features' scores of two evaluations on the same rows.
-
-    Parameters
-    ----------
-    workspace : Workspace or str
-    run_a, run_b : str
-        Evaluation run ids; both must have scored the same rows with the same labels
-        (same ``rows_fingerprint``), e.g. two dictionaries evaluated with the same seed.
-    n_boot, seed
-        As :func:`.scoring.paired_bootstrap`.
-
-    Returns
-    -------
-    dict
-        Per score: ``a``, ``b``, ``difference`` (a − b), ``low``, ``high``.
-    """
-    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
-    info = {e["run_id"]: e for e in ws.evaluations() if e["run_id"] in (run_a, run_b)}
-    for run in (run_a, run_b):
-        if run not in info:
-            raise InputError(problem(f"evaluations/{run}", "a complete evaluation", "none",
-                                     "Pass run ids from the evaluation history."))
-    if info[run_a]["rows_fingerprint"] != info[run_b]["rows_fingerprint"]:
-        raise InputError(problem(f"evaluations {run_a} and {run_b}", "the same rows and labels",
-                                 "different rows (other seed, max_rows, or data)",
-                                 "Evaluate both with the same seed and max_rows."))
-    a, b = ws.evaluation_arrays(run_a), ws.evaluation_arrays(run_b)
-    classes = np.asarray(info[run_a]["classes"])
-    y = np.searchsorted(classes, ws.labels(info[run_a]["labels"])[a["rows"]])
-    code_of = lambda pred: np.searchsorted(classes, pred)  # noqa: E731 - two uses below
-    return paired_bootstrap(y, code_of(a["pred_features"]), code_of(b["pred_features"]),
-                            classes.size, n_boot=n_boot, seed=seed)
-
-
-#: The promotion gate's verdicts on a candidate compared with the promoted dictionary.
-GATE_OUTCOMES = {
-    "promoted": "not worse than the promoted dictionary beyond the tolerance, and the "
-                "interval's lower end agrees",
-    "inconclusive": "within the tolerance, but the interval reaches below it: the evidence "
-                    "is too thin to replace the promoted dictionary",
-    "regression": "worse than the promoted dictionary by more than the tolerance",
-}
-
-
-def gate_decision(comparison: dict[str, float], tolerance: float) -> str:
-    """Decide promotion from a paired comparison (candidate = a, promoted = b).
-
-    With ``d`` the candidate's score minus the promoted one's and ``[low, high]`` its
-    bootstrap interval:
-
-    * ``regression`` when ``d < -tolerance``;
-    * ``promoted`` when ``d >= -tolerance`` and ``low >= -tolerance`` (a non-inferiority
-      test with margin ``tolerance`` at the interval's level);
-    * ``inconclusive`` otherwise.
-
-    Parameters
-    ----------
-    comparison : dict
-        One score's entry of :func:`compare_evaluations` (``difference``, ``low``).
-    tolerance : float
-        Margin, ≥ 0, in score units (0.01 = one accuracy point).
-
-    Returns
-    -------
-    str
-        A key of :data:`GATE_OUTCOMES`.
-    """
-    check_tolerance(tolerance)
-    if comparison["difference"] < -tolerance:
-        return "regression"
-    return "promoted" if comparison["low"] >= -tolerance else "inconclusive"
 
 
 # ---------------------------------------------------------------------------- helpers

@@ -1,4 +1,4 @@
-"""The evaluation protocol: scores, paired bootstrap, baselines, gate rule, and the digits."""
+"""The evaluation protocol: scores, paired bootstrap, baselines, and the digits."""
 
 from __future__ import annotations
 
@@ -61,18 +61,6 @@ def test_paired_bootstrap_of_identical_predictions_is_zero():
         assert score["difference"] == score["low"] == score["high"] == 0.0
 
 
-@pytest.mark.parametrize("d, low, outcome", [(0.02, 0.001, "promoted"), (-0.005, -0.009, "promoted"),
-                                             (-0.005, -0.02, "inconclusive"), (-0.011, -0.03, "regression"),
-                                             (-0.01, -0.01, "promoted")])
-def test_gate_rule(d, low, outcome):
-    assert evaluate.gate_decision({"difference": d, "low": low}, 0.01) == outcome
-
-
-def test_gate_refuses_negative_tolerance():
-    with pytest.raises(InputError, match="tolerance"):
-        evaluate.gate_decision({"difference": 0.0, "low": 0.0}, -0.1)
-
-
 @pytest.fixture(scope="module")
 def digits_evaluation(digits_workspace):
     ws, dict_id = digits_workspace
@@ -132,17 +120,6 @@ def test_evaluation_record_names_what_it_measured(digits_workspace, digits_evalu
     assert curve["shares"] == [0.1, 1.0]
     assert curve["train_rows"][0] == pytest.approx(0.1 * 1797 * 0.8, rel=0.02)
     assert curve["features"][0] < curve["features"][1]  # more labels help
-
-
-def test_compare_evaluations_needs_the_same_rows(digits_workspace, digits_evaluation):
-    ws, dict_id = digits_workspace
-    again = evaluate.evaluate_features(ws, "digits", dict_id, options=EvaluateOptions(baselines=(), learning_curve=(), n_boot=200))
-    same = evaluate.compare_evaluations(ws, digits_evaluation["run_id"], again["run_id"], n_boot=200)
-    assert same["accuracy"]["difference"] == same["accuracy"]["low"] == 0.0  # seeded: same predictions
-    other = evaluate.evaluate_features(ws, "digits", dict_id, options=EvaluateOptions(baselines=(), learning_curve=(), max_rows=900, n_boot=200))
-    with pytest.raises(InputError, match="same rows"):
-        evaluate.compare_evaluations(ws, digits_evaluation["run_id"], other["run_id"])
-    assert other["n_rows"] == 900
 
 
 def test_linear_svm_option_and_refusals(digits_workspace):

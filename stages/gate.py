@@ -1,0 +1,275 @@
+"""The promotion gate: compare a candidate dictionary with the promoted one, decide, promote.
+
+The nightly flow trains a candidate, encodes, pools and evaluates it; then this module
+decides what happens to it. The steps, as plain functions over the workspace (no Prefect:
+the flow keeps the run's state, events, artifacts and logging):
+
+1. :func:`outcome_without_comparison` — ``first`` when nothing is promoted yet,
+   ``unchanged`` when the candidate *is* the promoted dictionary (same inputs give the same
+   id); otherwise the two must be compared.
+2. :func:`compare` — a paired bootstrap of the two evaluations on the same rows
+   (:func:`compare_evaluations`), and the rule (:func:`gate_decision`): ``regression``,
+   ``promoted`` or ``inconclusive``.
+3. :func:`record_decision` — the promotion is checked, the decision appended to the
+   workspace (``decisions/<id>``), and only then the pointer moved. A run killed between
+   the two finds its decision when rerun and only moves the pointer.
+
+A decision carries the run's key (:func:`nightly_run_key`: the records' and labels'
+content and every option that can change it), so a rerun finds it
+(:func:`recorded_decision`) and reports it instead of deciding again.
+
+The workspace's ``check_promotion`` and ``promote`` do the checking and the moving; this
+module decides when to call them. There is no Prefect task here: the nightly flow calls
+these functions directly, so its task runs are the stages' (training, chunks, evaluations,
+pictures) and the gate's writes happen in the flow's own process, in order.
+
+Example
+-------
+>>> gate_decision({"difference": -0.004, "low": -0.02}, tolerance=0.01)
+'inconclusive'
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .checks import check_tolerance
+from .errors import InputError, problem
+from .kernels.scoring import paired_bootstrap
+from .workspace import Workspace, fingerprint_params
+
+__all__ = ["OUTCOMES", "STATE_NAMES", "GATE_OUTCOMES", "compare_evaluations",
+           "gate_decision", "outcome_without_comparison", "compare", "nightly_run_key",
+           "recorded_decision", "record_decision"]
+
+#: What a nightly run can end with.
+OUTCOMES = {
+    "first": "no dictionary was promoted yet; the candidate is promoted",
+    "promoted": "the candidate is not worse than the promoted one beyond the tolerance, "
+                "and its interval agrees; promoted",
+    "unchanged": "the candidate is the promoted dictionary (same inputs); nothing to do",
+    "inconclusive": "the candidate is within the tolerance but its interval reaches below it; "
+                    "not promoted",
+    "regression": "the candidate scored worse than the promoted one beyond the tolerance; "
+                  "not promoted",
+    "steady": "no drift beyond the threshold; no retrain, the promoted dictionary's features "
+              "were brought up to date",
+    "kept": "retraining was off: the promoted dictionary was kept and only records it had "
+            "not encoded yet were encoded and pooled",
+}
+#: The name of the state a nightly run ends in, per outcome.
+STATE_NAMES = {"first": "Promoted", "promoted": "Promoted", "unchanged": "Unchanged",
+               "inconclusive": "Inconclusive", "regression": "Regression", "steady": "Steady",
+               "kept": "Kept"}
+
+#: The promotion gate's verdicts on a candidate compared with the promoted dictionary.
+GATE_OUTCOMES = {
+    "promoted": "not worse than the promoted dictionary beyond the tolerance, and the "
+                "interval's lower end agrees",
+    "inconclusive": "within the tolerance, but the interval reaches below it: the evidence "
+                    "is too thin to replace the promoted dictionary",
+    "regression": "worse than the promoted dictionary by more than the tolerance",
+}
+
+#: The outcomes that move the pointer to the candidate.
+_PROMOTING = ("first", "promoted")
+
+
+def compare_evaluations(
+    workspace: Workspace | str, run_a: str, run_b: str, *, n_boot: int = 2000, seed: int = 0,
+) -> dict[str, dict[str, float]]:
+    """Paired bootstrap of the features' scores of two evaluations on the same rows.
+
+    Parameters
+    ----------
+    workspace : Workspace or str
+    run_a, run_b : str
+        Evaluation run ids; both must have scored the same rows with the same labels
+        (same ``rows_fingerprint``), e.g. two dictionaries evaluated with the same seed.
+    n_boot, seed
+        As :func:`.scoring.paired_bootstrap`.
+
+    Returns
+    -------
+    dict
+        Per score: ``a``, ``b``, ``difference`` (a − b), ``low``, ``high``.
+    """
+    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    info = {e["run_id"]: e for e in ws.evaluations() if e["run_id"] in (run_a, run_b)}
+    for run in (run_a, run_b):
+        if run not in info:
+            raise InputError(problem(f"evaluations/{run}", "a complete evaluation", "none",
+                                     "Pass run ids from the evaluation history."))
+    if info[run_a]["rows_fingerprint"] != info[run_b]["rows_fingerprint"]:
+        raise InputError(problem(f"evaluations {run_a} and {run_b}", "the same rows and labels",
+                                 "different rows (other seed, max_rows, or data)",
+                                 "Evaluate both with the same seed and max_rows."))
+    a, b = ws.evaluation_arrays(run_a), ws.evaluation_arrays(run_b)
+    classes = np.asarray(info[run_a]["classes"])
+    y = np.searchsorted(classes, ws.labels(info[run_a]["labels"])[a["rows"]])
+    code_of = lambda pred: np.searchsorted(classes, pred)  # noqa: E731 - two uses below
+    return paired_bootstrap(y, code_of(a["pred_features"]), code_of(b["pred_features"]),
+                            classes.size, n_boot=n_boot, seed=seed)
+
+
+def gate_decision(comparison: dict[str, float], tolerance: float) -> str:
+    """Decide promotion from a paired comparison (candidate = a, promoted = b).
+
+    With ``d`` the candidate's score minus the promoted one's and ``[low, high]`` its
+    bootstrap interval:
+
+    * ``regression`` when ``d < -tolerance``;
+    * ``promoted`` when ``d >= -tolerance`` and ``low >= -tolerance`` (a non-inferiority
+      test with margin ``tolerance`` at the interval's level);
+    * ``inconclusive`` otherwise.
+
+    Parameters
+    ----------
+    comparison : dict
+        One score's entry of :func:`compare_evaluations` (``difference``, ``low``).
+    tolerance : float
+        Margin, ≥ 0, in score units (0.01 = one accuracy point).
+
+    Returns
+    -------
+    str
+        A key of :data:`GATE_OUTCOMES`.
+    """
+    check_tolerance(tolerance)
+    if comparison["difference"] < -tolerance:
+        return "regression"
+    return "promoted" if comparison["low"] >= -tolerance else "inconclusive"
+
+
+def outcome_without_comparison(previous_id: str | None, candidate_id: str) -> str | None:
+    """The outcome when no comparison is needed to decide it, else ``None``.
+
+    Parameters
+    ----------
+    previous_id : str or None
+        The dictionary promoted when the run started (``None``: none yet).
+    candidate_id : str
+        The candidate the run trained (or found trained: its id follows its inputs).
+
+    Returns
+    -------
+    str or None
+        ``"first"`` when nothing was promoted, ``"unchanged"`` when the candidate is the
+        promoted dictionary, ``None`` when the two must be compared (:func:`compare`).
+    """
+    if previous_id is None:
+        return "first"
+    if previous_id == candidate_id:
+        return "unchanged"
+    return None
+
+
+def compare(workspace: Workspace | str, candidate_run: str, promoted_run: str, *, metric: str,
+            tolerance: float, n_boot: int = 2000, seed: int = 0) -> dict:
+    """Compare the candidate's evaluation with the promoted dictionary's, and decide.
+
+    Parameters
+    ----------
+    workspace : Workspace or str
+    candidate_run, promoted_run : str
+        Run ids of the two evaluations, made on the same rows (same seed and ``max_rows``).
+    metric : str
+        The score the gate compares (``accuracy``, ``balanced_accuracy`` or ``macro_f1``).
+    tolerance : float
+        Margin, ≥ 0 (see :func:`gate_decision`).
+    n_boot, seed
+        As :func:`.scoring.paired_bootstrap`.
+
+    Returns
+    -------
+    dict
+        ``outcome`` (a key of :data:`GATE_OUTCOMES`) and ``gate``: the comparison of
+        ``metric`` (``a`` the candidate's score, ``b`` the promoted one's, ``difference``,
+        ``low``, ``high``).
+    """
+    comparison = compare_evaluations(workspace, candidate_run, promoted_run, n_boot=n_boot, seed=seed)
+    return {"outcome": gate_decision(comparison[metric], tolerance), "gate": comparison[metric]}
+
+
+def nightly_run_key(ws: Workspace, records: str, options: dict) -> str:
+    """What a nightly run decides on, as a digest: the records' and labels' content and
+    every option that can change the decision (not workers, leases, pictures or alerts).
+
+    The promoted dictionary is not part of it: a run killed after moving the pointer must
+    find its own decision when rerun (see :func:`recorded_decision`).
+    """
+    labels = options.get("labels") or records
+    return fingerprint_params({
+        "records": records, "records_fingerprint": ws.records_fingerprint(records),
+        "labels_fingerprint": ws.labels_fingerprint(labels) if ws.has_labels(labels) else None,
+        "options": options})
+
+
+def recorded_decision(ws: Workspace, run_key: str) -> dict | None:
+    """The decision recorded for ``run_key`` if it still describes the workspace.
+
+    It does while the pointer is where that run found it or where it put it; a pointer
+    moved since by someone else makes it stale, and the run decides afresh.
+    """
+    recorded = ws.find_decision(run_key)
+    if recorded is None or ws.promoted not in (recorded["previous_id"], recorded["promoted_id"]):
+        return None
+    return recorded
+
+
+def record_decision(workspace: Workspace | str, records: str, report: dict, *, run_key: str,
+                    recorded: dict | None) -> dict:
+    """Record the nightly run's decision and move the pointer when it promotes.
+
+    The promotion is checked first (``Workspace.check_promotion``: the candidate, its
+    features and its evaluation complete and consistent), then the decision is appended
+    (``complete`` last), then the pointer moves: a run killed between them finds its
+    decision when rerun and only moves the pointer. A recorded decision is reported as it
+    was, never decided or appended again.
+
+    Parameters
+    ----------
+    workspace : Workspace or str
+    records : str
+        Name of the records the run worked on.
+    report : dict
+        The nightly run's report so far; read: ``outcome``, ``candidate_id``,
+        ``previous_id``, ``metric``, ``tolerance``, ``gate``, ``drift``, and the
+        ``candidate`` and ``promoted`` evaluations' manifests (or ``None``).
+    run_key : str
+        :func:`nightly_run_key` of the run.
+    recorded : dict or None
+        :func:`recorded_decision` of the run: the decision these inputs had already.
+
+    Returns
+    -------
+    dict
+        ``outcome`` (the recorded one, when there was one), ``decision_id``,
+        ``already_decided`` (only when ``recorded``: its id), and ``promoted_id``, the
+        dictionary promoted after the call.
+    """
+    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    cand = report["candidate"]
+    out: dict = {"outcome": recorded["outcome"] if recorded else report["outcome"]}
+    if recorded:
+        out["decision_id"] = out["already_decided"] = recorded["decision_id"]
+    promoting = out["outcome"] in _PROMOTING
+    if promoting:
+        # The dictionary, its features and this evaluation of them must be complete and
+        # consistent; checked before anything is recorded.
+        ws.check_promotion(report["candidate_id"], evaluation=cand["run_id"])
+    if not recorded:
+        out["decision_id"] = ws.append_decision({
+            "records": records, "outcome": out["outcome"], "candidate_id": report["candidate_id"],
+            "previous_id": report["previous_id"],
+            "promoted_id": report["candidate_id"] if promoting else report["previous_id"],
+            "promoted": promoting, "metric": report["metric"],
+            "tolerance": report["tolerance"], "gate": report["gate"], "drift": report["drift"],
+            "candidate_run": cand["run_id"] if cand else None,
+            "promoted_run": report["promoted"]["run_id"] if report["promoted"] else None,
+            "run_key": run_key,
+        })
+    if promoting and ws.promoted != report["candidate_id"]:
+        ws.promote(report["candidate_id"], evaluation=cand["run_id"])
+    out["promoted_id"] = ws.promoted
+    return out
