@@ -54,10 +54,11 @@ import time
 import uuid
 from dataclasses import asdict, dataclass
 
-from zarr.core.buffer import default_buffer_prototype
-from zarr.core.sync import sync
+from . import _zarr
+from .layout import _check_name, _check_output_path
+from .safety import ContainedLocalStore
 
-from ..errors import LeaseHeld, LeaseLost, not_writable, problem, unwritable
+from ..errors import InputError, LeaseHeld, LeaseLost, not_writable, problem, unwritable
 
 PREFIX = ".leases"
 
@@ -136,11 +137,11 @@ class _LeaseStore:
         self.root_path = root_path
 
     def read(self, output: str) -> LeaseInfo | None:
-        buf = sync(self.store.get(_key(self.root_path, output), prototype=default_buffer_prototype()))
-        if buf is None:
+        data = _zarr.read_key(self.store, _key(self.root_path, output))
+        if data is None:
             return None
         try:
-            return LeaseInfo(**json.loads(buf.to_bytes()))
+            return LeaseInfo(**json.loads(data))
         except (ValueError, TypeError):
             # An unreadable lease object (torn write, foreign content): treat as expired.
             return LeaseInfo(output, "?", -1, "unreadable lease", "", 0.0, 0.0, 0.0)
@@ -152,9 +153,9 @@ class _LeaseStore:
         fs = getattr(self.store, "fs", None)
         try:
             if fs is not None and hasattr(fs, "_pipe_file"):  # fsspec store: conditional PUT
-                sync(fs._pipe_file(f"{self.store.path.rstrip('/')}/{key}", data, mode="create"))
+                _zarr.run(fs._pipe_file(f"{self.store.path.rstrip('/')}/{key}", data, mode="create"))
             else:
-                sync(self.store.set_if_not_exists(key, _buffer(data)))
+                _zarr.run(self.store.set_if_not_exists(key, _zarr.to_buffer(data)))
         except OSError as exc:  # FileExistsError, or a store's "precondition failed" ...
             if unwritable(exc):  # ... but never a read-only or protected store
                 raise not_writable(f"lease on {info.output}", exc) from exc
@@ -162,14 +163,10 @@ class _LeaseStore:
         return held is not None and held.token == info.token
 
     def overwrite(self, info: LeaseInfo) -> None:
-        sync(self.store.set(_key(self.root_path, info.output), _buffer(json.dumps(info.to_json()).encode())))
+        _zarr.run(self.store.set(_key(self.root_path, info.output), _zarr.to_buffer(json.dumps(info.to_json()).encode())))
 
     def delete(self, output: str) -> None:
-        sync(self.store.delete(_key(self.root_path, output)))
-
-
-def _buffer(data: bytes):
-    return default_buffer_prototype().buffer.from_bytes(data)
+        _zarr.run(self.store.delete(_key(self.root_path, output)))
 
 
 
@@ -305,3 +302,93 @@ def check_held(store: _LeaseStore, output: str, token: str, registry: set) -> No
         "This run was paused or cut off too long and stopped writing: nothing more was "
         "committed after the lease was lost, and finished chunks are kept. Let the run "
         "holding it finish, or rerun to resume; raise the TTL if runs pause this long."))
+
+
+# ---------------------------------------------------------------- the workspace's side
+#: Tokens of the leases this process holds (a holder may write its own outputs).
+_HELD_LEASES: set[str] = set()
+
+
+class LeasesMixin:
+    """Write leases of a workspace's outputs, kept beside it under ``.leases/``."""
+
+    def lease(self, output: str, *, run: str | None = None, ttl: float = 120.0,
+              break_existing: bool = False) -> Lease:
+        """Take the write lease of an output; use it as a context manager.
+
+        One run at a time may write an output (``codes/…``, ``features/…``,
+        ``dictionaries/<id>``, or ``promoted`` for the pointer). While held, a heartbeat
+        thread renews it every ``ttl / 4`` seconds; it is released on exit.
+
+        Parameters
+        ----------
+        output : str
+            Workspace path of the output.
+        run : str, optional
+            Name of the run, shown to anyone refused (default: this process).
+        ttl : float
+            Seconds without a heartbeat after which the lease counts as abandoned.
+        break_existing : bool
+            Take the lease even from a live holder (when you know it is dead).
+
+        Returns
+        -------
+        Lease
+            ``with ws.lease("codes/d-1/vib", run="nightly"): ...``
+
+        Raises
+        ------
+        LeaseHeld
+            A live run holds it; the message names its host, pid, run and start time.
+
+        Notes
+        -----
+        Expired leases (heartbeat older than the TTL, or a holder process on this host
+        that is gone) are broken silently; finished chunks are never touched by a
+        break. See :mod:`atomline.stages.workspace.leases` for what each kind of store guarantees.
+        """
+        if not (isinstance(ttl, (int, float)) and ttl > 0):
+            raise InputError(problem("lease ttl", "a positive number of seconds", repr(ttl), "Pass ttl > 0."))
+        lease = acquire(self._lease_store(), self._lease_name(output),
+                                run=run or f"pid {os.getpid()}", ttl=float(ttl),
+                                break_existing=break_existing, registry=_HELD_LEASES)
+        store = self.root.store
+        if isinstance(store, ContainedLocalStore):
+            # The one writer now: what a killed writer left half-written here is abandoned.
+            # ("promoted" is the root's own metadata: sweep only the root's files.)
+            prefix = "" if output == "promoted" else f"{self.root.store_path.path}/{output}".strip("/")
+            if prefix == "" or os.path.isdir(store.root / prefix):
+                store.sweep_unfinished_writes(prefix)
+        return lease
+
+    def lease_holder(self, output: str) -> dict | None:
+        """Who holds the lease of ``output`` (host, pid, run, started, heartbeat, ttl), or None."""
+        held = self._lease_store().read(self._lease_name(output))
+        return None if held is None else dict(held.to_json(), expired=held.expired())
+
+    def break_lease(self, output: str) -> dict | None:
+        """Remove the lease of ``output`` whoever holds it; returns what was removed.
+
+        Only the lease object is deleted: chunks already marked done stay done, and the
+        next run resumes from them.
+        """
+        holder = self.lease_holder(output)
+        if holder is not None:
+            self._lease_store().delete(self._lease_name(output))
+        return holder
+
+    def _lease_name(self, output: str) -> str:
+        if output in ("promoted", "evaluations", "decisions"):
+            return output
+        parts = output.split("/") if isinstance(output, str) else []
+        if len(parts) == 2 and parts[0] == "dictionaries":
+            _check_name(parts[1], "dictionary id")
+            return output
+        return _check_output_path(output)
+
+    def _lease_store(self) -> _LeaseStore:
+        return _LeaseStore(self.root.store, self.root.store_path.path)
+
+    def _refuse_leased(self, path: str) -> None:
+        check_not_leased(self._lease_store(), path, _HELD_LEASES)
+

@@ -21,13 +21,17 @@ bytes stored under its own name, never a pointer to other bytes.
 
 from __future__ import annotations
 
+import json
 import os
 import re
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+import zarr
 from zarr.storage import LocalStore
+
+from ._zarr import child_names, read_key
 
 from ..errors import LayoutError, UnsafeStore, not_writable, problem, unwritable
 
@@ -282,3 +286,57 @@ class ContainedLocalStore(LocalStore):
     def delete_sync(self, key: str) -> None:
         self.contained(key)
         super().delete_sync(key)
+
+
+# ---------------------------------------------------------------- raw metadata checks
+def _check_safe(arr: zarr.Array, where: str) -> None:
+    """Refuse an array whose decoding could run code (see :mod:`._safety`)."""
+    check_array_metadata(arr.metadata.to_dict(), where)
+
+
+def _check_document(data: bytes | None, name: str, where: str) -> None:
+    """Check one raw metadata document (``zarr.json`` or ``.zarray``) before Zarr parses it."""
+    if data is None:
+        return
+    try:
+        doc = json.loads(data)
+    except ValueError as exc:
+        raise LayoutError(problem(where, f"a JSON {name}", f"unreadable bytes ({exc})",
+                                  "The store was altered; rebuild this entry.")) from exc
+    if not isinstance(doc, dict):
+        raise LayoutError(problem(where, f"a JSON object in {name}", type(doc).__name__,
+                                  "The store was altered; rebuild this entry."))
+    if name == ".zarray" or doc.get("node_type") == "array":
+        check_array_metadata(doc, where)
+
+
+def _check_stored_node(store: Any, path: str, where: str) -> None:
+    """Check the raw metadata of the node at ``path`` of a zarr store (if it is an array)."""
+    for name in ("zarr.json", ".zarray"):
+        _check_document(read_key(store, f"{path}/{name}"), name, where)
+
+
+def _check_group_members(group: zarr.Group, where: str) -> None:
+    """Check the raw metadata of every child of ``group`` before Zarr opens them."""
+    for child in child_names(group):
+        if child not in ("zarr.json", ".zattrs", ".zgroup", ".zarray"):
+            _check_stored_node(group.store, f"{group.path}/{child}", f"{where}/{child}")
+
+
+def _check_linked_metadata(url: str, path: str, storage_options: dict | None) -> None:
+    """Check the raw metadata of a linked array with fsspec, before Zarr parses it."""
+    import fsspec
+
+    try:
+        fs, base = fsspec.core.url_to_fs(url, **(storage_options or {}) if "://" in url else {})
+    except Exception:  # an unknown protocol: zarr.open reports it next
+        return
+    where = f"linked array {url}:{path}"
+    for name in ("zarr.json", ".zarray"):
+        key = "/".join(p for p in (base.rstrip("/"), path.strip("/"), name) if p)
+        try:
+            data = fs.cat_file(key)
+        except (FileNotFoundError, IsADirectoryError, NotADirectoryError):
+            continue
+        _check_document(data, name, where)
+
