@@ -170,25 +170,29 @@ class TrainOptions:
 
     __pydantic_config__ = _SCHEMA
 
-    n_atoms: int = _option(128, flag="--atoms", help="number of atoms k")
+    n_atoms: int | None = _option(flag="--atoms",
+                                  help="number of atoms k (default: from the records' shape)")
     patch_size: int | tuple[int, ...] | None = _option(
-        help="patch length (1-D) or height width (images); the whole record if omitted")
+        help="patch length (1-D) or height width (images) (default: from the records' shape; "
+             "vectors are one whole patch)")
     stride: int | tuple[int, ...] | None = _option(
-        help="step between patches (default: the patch size)")
+        help="step between patches (default: the given patch size, or from the records' shape)")
     method: str = _option("online", choices=LEARNERS, help="dictionary learner")
     coder: str = _option("omp", choices=CODERS,
                          help="sparse coder inside the learner, and the encode stage's default")
     coder_options: dict[str, Any] | None = _option(
         flag="--coder-option", shorthands={"--nonzero": "n_nonzero"},
-        help="options of the coder, KEY=VALUE, repeatable (default: the coder's own, e.g. "
-             "n_nonzero=5 for omp); "
+        help="options of the coder, KEY=VALUE, repeatable (default: the coder's own, with "
+             "n_nonzero from the records' shape for the greedy coders); "
              "--nonzero N sets n_nonzero")
     learner_options: dict[str, Any] | None = _option(
         flag="--learner-option", help="options of the learner, KEY=VALUE, repeatable (e.g. n_passes=2)")
     preprocessing: dict[str, Any] | None = _option(
         flag="--preprocessing-option",
-        help="fields of the preprocessing (Normaliser), KEY=VALUE, repeatable")
-    sample_patches: int = _option(20_000, flag="--sample", help="training patches sampled")
+        help="fields of the preprocessing (Normaliser), KEY=VALUE, repeatable (default: "
+             "from the records' shape)")
+    sample_patches: int | None = _option(
+        flag="--sample", help="training patches sampled (default: from the records' shape)")
     seed: int = _option(0, help="seed of the sample, the learner and the evaluation")
 
     def __post_init__(self) -> None:
@@ -196,13 +200,17 @@ class TrainOptions:
              coder_options=_dict_or_none(self.coder_options, "coder_options"),
              learner_options=_dict_or_none(self.learner_options, "learner_options"),
              preprocessing=_dict_or_none(self.preprocessing, "preprocessing"))
-        learning.check_learner(self.method, self.n_atoms)
-        _positive_int("n_atoms", self.n_atoms, "Ask for at least one atom.")
+        # None: chosen from the records' shape when the stage runs (stages/settings.py).
+        learning.check_learner(self.method, 1 if self.n_atoms is None else self.n_atoms)
+        if self.n_atoms is not None:
+            _positive_int("n_atoms", self.n_atoms, "Ask for at least one atom.")
         _check_geometry("patch_size", self.patch_size)
         _check_geometry("stride", self.stride)
         _one_of("coder", self.coder, CODERS, "Pick a listed coder.")
-        _positive_int("sample_patches", self.sample_patches, "Sample more patches.")
-        check_sample_size(self.sample_patches, self.n_atoms)
+        if self.sample_patches is not None:
+            _positive_int("sample_patches", self.sample_patches, "Sample more patches.")
+        if self.sample_patches is not None and self.n_atoms is not None:
+            check_sample_size(self.sample_patches, self.n_atoms)
         _positive_int("seed", self.seed, "Use a seed of 0 or more.", low=0)
         learning.check_learner_options(self.method, self.learner_options or {},
                                        learning.TRAIN_OWN_OPTIONS)
@@ -250,7 +258,9 @@ class PoolOptions:
     split_sign: bool = _option(True, flag="--no-split-sign",
                                help="pool positive and negative parts separately "
                                     "(--no-split-sign pools |z|)")
-    regions: int | tuple[int, ...] = _option(4, help="equal parts per spatial axis of the patch grid")
+    regions: int | tuple[int, ...] | None = _option(
+        help="equal parts per spatial axis of the patch grid (default: from the records' shape, "
+             "within the dictionary's grid)")
     on_bad_chunk: str = _option("stop", choices=BAD_CHUNK_CHOICES,
                                 help="a missing or unreadable input chunk stops the run, or is "
                                      "skipped and its rows left out and listed")

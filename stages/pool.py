@@ -19,6 +19,7 @@ from .encode import codes_path
 from .kernels.pooling import check_reduce, n_pooled, pool_codes, region_of_patches
 from .kernels.prep import PatchGeometry
 from .options import PoolOptions
+from .settings import pool_regions
 from .workspace import Workspace, fingerprint_params
 
 __all__ = ["prepare_pool", "pool_chunks", "pool_task", "features_path"]
@@ -46,19 +47,25 @@ def prepare_pool(
         The codes ``codes/<dict_id>/<records>`` must exist (chunks are pooled once encoded).
     options : PoolOptions
         ``reduce`` ({"max", "mean"}), ``split_sign``, ``regions`` (equal parts per
-        spatial axis of the patch grid).
+        spatial axis of the patch grid; ``None``: the records' shape default the dictionary
+        was trained with, within its grid, :func:`~atomline.stages.settings.pool_regions`).
     overwrite : bool
 
     Returns
     -------
     dict
-        ``{"output", "n_chunks", "pending", "n_features"}``
+        ``{"output", "n_chunks", "pending", "n_features", "skipped_rows", "regions",
+        "regions_reason"}``
     """
     reduce, split_sign, regions = options.reduce, options.split_sign, options.regions
     ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
     codes = ws.output(codes_path(dict_id, records))
     cattrs = codes.attrs
     geometry = PatchGeometry.from_attrs(cattrs["geometry"])
+    if regions is None:
+        regions, reason = pool_regions(ws.load_dictionary(dict_id).attrs, geometry.grid)
+    else:
+        reason = f"regions = {regions} was given."
     _, R = region_of_patches(geometry.grid, regions)
     check_reduce(reduce)
     params = {"reduce": reduce, "split_sign": bool(split_sign),
@@ -75,7 +82,8 @@ def prepare_pool(
                            overwrite=overwrite, covers=cattrs["covers"])
     skipped = out.record_skips(cattrs["record_chunk_rows"], n_records)
     return {"output": features_path(dict_id, records), "n_chunks": out.n_chunks,
-            "pending": out.pending(), "n_features": F, "skipped_rows": skipped["n_rows"]}
+            "pending": out.pending(), "n_features": F, "skipped_rows": skipped["n_rows"],
+            "regions": params["regions"], "regions_reason": reason}
 
 
 def pool_chunks(

@@ -20,6 +20,7 @@ from .kernels.features import sample_patches
 from .kernels.learning import TRAIN_OWN_OPTIONS, check_learner_options, learn, takes_coder
 from .kernels.prep import Normaliser, PatchGeometry
 from .options import TrainOptions
+from .settings import resolve
 from .workspace import Workspace, fingerprint_params
 
 __all__ = ["train_dictionary", "train_task", "train_encoder", "train_encoder_task"]
@@ -43,9 +44,10 @@ def train_dictionary(
     records : str
         Name of the records array.
     options : TrainOptions
-        Atoms, patch geometry (the whole record is one patch when ``patch_size`` is
-        ``None``), learner and its coder, preprocessing, sample size and seed (see
-        :class:`~atomline.stages.options.TrainOptions` for each one's meaning and default).
+        Atoms, patch geometry, learner and its coder, preprocessing, sample size and seed
+        (see :class:`~atomline.stages.options.TrainOptions` for each one's meaning). Values
+        left ``None`` are chosen from the records' shape (:func:`~atomline.stages.settings.resolve`)
+        before anything is read; a configuration that cannot work is refused then.
     dict_id : str, optional
         Id to store under; derived from the inputs by default.
     run : str, optional
@@ -57,10 +59,13 @@ def train_dictionary(
     -------
     dict
         Manifest: ``dict_id``, ``reused`` (True when an identical dictionary existed),
-        ``n_atoms``, ``n_features``, ``sample_patches``, ``diagnostics`` summary.
+        ``n_atoms``, ``n_features``, ``sample_patches``, ``diagnostics`` summary, and
+        ``settings`` (``kind``, the pooling ``regions`` default and one ``reasons``
+        sentence per value chosen from the shape or given).
     """
     ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
     arr = ws.records(records)
+    options, chosen = resolve(ws, records, options)
     n_atoms, method, coder, seed = options.n_atoms, options.method, options.coder, options.seed
     sample_patches, preprocessing = options.sample_patches, options.preprocessing
     geometry = PatchGeometry.for_records(arr.shape[1:], options.patch_size, options.stride)
@@ -85,12 +90,12 @@ def train_dictionary(
     dict_id = dict_id or f"d-{fingerprint_params(recipe)[:12]}"
     if ws.has_dictionary(dict_id):
         stored = ws.load_dictionary(dict_id)
-        return _manifest(stored.attrs, dict_id, reused=True)
+        return _manifest(stored.attrs, dict_id, reused=True, chosen=chosen)
 
     # One run trains a given dictionary at a time; a second one is refused, naming the first.
     with ws.lease(f"dictionaries/{dict_id}", run=run, break_existing=break_lease) as held:
         if ws.has_dictionary(dict_id):  # finished by another run just before we took the lease
-            return _manifest(ws.load_dictionary(dict_id).attrs, dict_id, reused=True)
+            return _manifest(ws.load_dictionary(dict_id).attrs, dict_id, reused=True, chosen=chosen)
         sample = _sample(ws, records, arr, geometry, sample_patches, seed)
         # Checkpoints live in the workspace: a killed run resumes from the last one and
         # ends with the same atoms as an uninterrupted run.
@@ -108,10 +113,11 @@ def train_dictionary(
             preprocessing=learned.preprocessing.to_attrs(),
             params=learned.params,
             diagnostics=learned.diagnostics,
+            settings=chosen,
         )
         held.check()  # a run that lost its lease stores nothing
         stored = ws.save_dictionary(dict_id, learned.atoms, attrs, learned.preprocessing.arrays())
-    return _manifest(stored.attrs, dict_id, reused=False)
+    return _manifest(stored.attrs, dict_id, reused=False, chosen=chosen)
 
 
 def _sample(ws: Workspace, records: str, arr, geometry: PatchGeometry, n_patches: int,
@@ -128,7 +134,7 @@ def _save_checkpoint(ws: Workspace, held, dict_id: str, state: dict) -> None:
     ws.save_checkpoint(dict_id, state)
 
 
-def _manifest(attrs: dict, dict_id: str, reused: bool) -> dict:
+def _manifest(attrs: dict, dict_id: str, reused: bool, chosen: dict) -> dict:
     diag = attrs.get("diagnostics", {})
     objective = diag.get("objective") or [None]
     return {
@@ -140,6 +146,8 @@ def _manifest(attrs: dict, dict_id: str, reused: bool) -> dict:
         "sample_patches": attrs["sample_patches"],
         "coherence": diag.get("coherence"),
         "final_objective": objective[-1],
+        "geometry": attrs["geometry"],
+        "settings": chosen,
     }
 
 

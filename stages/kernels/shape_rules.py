@@ -41,7 +41,7 @@ from typing import Any, Mapping
 
 from ..errors import InputError, problem
 
-__all__ = ["Settings", "default_settings", "check_settings", "SETTING_NAMES"]
+__all__ = ["Settings", "default_settings", "check_settings", "geometry_defaults", "SETTING_NAMES"]
 
 #: Values a caller may give to :func:`check_settings`.
 SETTING_NAMES = ("patch_size", "stride", "regions", "n_atoms", "n_nonzero", "sample_patches",
@@ -159,6 +159,28 @@ def default_settings(record_shape: tuple[int, ...], n_records: int, *,
             f"{' × '.join(map(str, regions))} pooled part(s) keep where along the "
             f"{'signal' if kind == 'signals' else 'image'} an atom fired (at most {want} per "
             f"axis, never more than the {' × '.join(map(str, grid))} patch positions).")
+    values, more = geometry_defaults(kind, shape, size, stride, n_records)
+    reasons.update(more)
+    settings = Settings(kind, shape, size, stride, regions, **values,
+                        reasons=MappingProxyType(reasons))
+    _refuse_impossible(settings, n_records)
+    return settings
+
+
+def geometry_defaults(kind: str, shape: tuple[int, ...], size: tuple[int, ...] | None,
+                      stride: tuple[int, ...] | None, n_records: int) -> tuple[dict, dict[str, str]]:
+    """Atoms, nonzeros, sample and preprocessing for a patch geometry, with their reasons.
+
+    The rules :func:`default_settings` applies to its own geometry, for a given one (the
+    geometry must fit the records: check it with :func:`check_settings` first).
+
+    Returns
+    -------
+    values : dict
+        ``n_atoms``, ``n_nonzero``, ``sample_patches`` (int), ``normalise``, ``whiten`` (bool).
+    reasons : dict of str to str
+    """
+    reasons: dict[str, str] = {}
     d = _patch_dimension(shape, kind, size)
     available = n_records * math.prod(_grid(shape, kind, size, stride))
     n_atoms = max(1, min(_OVERCOMPLETE * d, _MAX_ATOMS, available // _PATCHES_PER_ATOM))
@@ -188,10 +210,8 @@ def default_settings(record_shape: tuple[int, ...], n_records: int, *,
         "may differ." if whiten else
         "Whitening off: neighbouring samples are already on one scale, and its covariance "
         "needs many patches per dimension.")
-    settings = Settings(kind, shape, size, stride, regions, int(n_atoms), int(n_nonzero),
-                        int(sample), normalise, whiten, MappingProxyType(reasons))
-    _refuse_impossible(settings, n_records)
-    return settings
+    return ({"n_atoms": int(n_atoms), "n_nonzero": int(n_nonzero), "sample_patches": int(sample),
+             "normalise": normalise, "whiten": whiten}, reasons)
 
 
 def check_settings(record_shape: tuple[int, ...], n_records: int, *, vectors: bool = False,
