@@ -25,6 +25,8 @@ from atomline.stages.errors import InputError, problem
 from atomline.stages.kernels.learning import (TRAIN_OWN_OPTIONS, check_learner, check_learner_options,
                                               default_coder_options, takes_coder)
 from atomline.stages.kernels.prep import PatchGeometry
+from atomline.stages.options import TrainOptions
+from atomline.stages.settings import resolve
 from atomline.stages.workspace import Workspace
 
 __all__ = ["check_runner", "check_train", "check_encode", "check_pool", "check_evaluate",
@@ -36,21 +38,30 @@ def check_runner(workers: int) -> None:
     check_workers(workers)
 
 
-def check_train(workspace: str, records: str, *, n_atoms: int, patch_size: Any, stride: Any,
-                method: str, coder: str, coder_options: dict | None, sample_patches: int,
-                learner_options: dict | None = None, **_unchecked: Any) -> PatchGeometry:
+def check_train(workspace: str, records: str, *, n_atoms: int | None, patch_size: Any, stride: Any,
+                method: str, coder: str, coder_options: dict | None, sample_patches: int | None,
+                learner_options: dict | None = None, preprocessing: dict | None = None,
+                **_unchecked: Any) -> PatchGeometry:
     """What the train stage refuses before reading a row; returns the patch geometry.
 
-    ``_unchecked`` takes the remaining train parameters (seed, preprocessing), which
-    only the run itself can judge.
+    Values left out are chosen from the records' shape exactly as the stage chooses them
+    (``stages.settings.resolve``), and a configuration that cannot work is refused here.
+    ``_unchecked`` takes the remaining train parameters (seed), which only the run itself
+    can judge.
     """
-    shape = _open(workspace).records(records).shape
+    ws = _open(workspace)
+    shape = ws.records(records).shape
+    options, _ = resolve(ws, records, TrainOptions(
+        n_atoms=n_atoms, patch_size=patch_size, stride=stride, method=method, coder=coder,
+        coder_options=coder_options, learner_options=learner_options,
+        preprocessing=preprocessing, sample_patches=sample_patches))
+    n_atoms = options.n_atoms
     check_learner(method, n_atoms)
     check_learner_options(method, learner_options or {}, TRAIN_OWN_OPTIONS)
-    check_sample_size(sample_patches, n_atoms)
-    geometry = PatchGeometry.for_records(shape[1:], _tuple(patch_size), _tuple(stride))
+    check_sample_size(options.sample_patches, n_atoms)
+    geometry = PatchGeometry.for_records(shape[1:], options.patch_size, options.stride)
     if takes_coder(method):
-        _check_coder(coder, n_atoms, default_coder_options(coder, coder_options))
+        _check_coder(coder, n_atoms, default_coder_options(coder, options.coder_options))
     return geometry
 
 
@@ -103,7 +114,8 @@ def check_nightly(workspace: str, records: str, *, retrain: str, tolerance: floa
         grid = check_train(workspace, records, **train).grid
     else:
         grid = PatchGeometry.from_attrs(ws.load_dictionary(ws.promoted).attrs["geometry"]).grid
-    check_regions(grid, _tuple(regions))
+    if regions is not None:  # otherwise chosen within the grid
+        check_regions(grid, _tuple(regions))
     _check_labels(ws, labels or records, folds)
     check_curve(learning_curve)
 

@@ -30,6 +30,7 @@ class RecordsMixin:
         *,
         chunk_rows: int | None = None,
         overwrite: bool = False,
+        kind: str | None = None,
     ) -> dict:
         """Copy records into ``data/<name>``, chunk by chunk.
 
@@ -42,15 +43,20 @@ class RecordsMixin:
             Rows per Zarr chunk; by default about 4 MiB of data per chunk.
         overwrite : bool
             Replace an existing array of that name.
+        kind : {"signals", "images", "vectors"}, optional
+            What one record is, stored with the records (:meth:`records_kind`). By default
+            rank-1 records are signals and rank-2/3 ones images; ``"vectors"`` (rank 1 only)
+            says the columns are features, so the stages use each record as one patch.
 
         Returns
         -------
         dict
-            ``{"name", "shape", "dtype", "chunk_rows", "n_chunks", "fingerprint"}``
+            ``{"name", "shape", "dtype", "chunk_rows", "n_chunks", "fingerprint", "kind"}``
         """
         _check_name(name, "records name")
         arr = _array_like(source)
         check_records(arr, f"records {name!r}")
+        kind = _record_kind(kind, arr.shape[1:], name)
         path = f"data/{name}"
         self._refuse_existing(path, overwrite)
         rows = _default_chunk_rows(arr.shape, arr.dtype) if chunk_rows is None else chunk_rows
@@ -71,7 +77,7 @@ class RecordsMixin:
                                    config={"write_empty_chunks": True})
         for start in range(0, arr.shape[0], rows):
             z[start : start + rows] = np.asarray(arr[start : start + rows])
-        z.attrs.update({"all_chunks_stored": True, **_fingerprint_attrs(digest, [])})
+        z.attrs.update({"all_chunks_stored": True, "kind": kind, **_fingerprint_attrs(digest, [])})
         return self.describe_records(name)
 
     def link_records(self, name: str, url: str, path: str = "", *, overwrite: bool = False,
@@ -299,7 +305,33 @@ class RecordsMixin:
         arr = self.records(name)
         return {"name": name, "shape": list(arr.shape), "dtype": str(arr.dtype),
                 "chunk_rows": int(arr.chunks[0]), "n_chunks": int(arr.cdata_shape[0]),
-                "fingerprint": self.records_fingerprint(name)}
+                "fingerprint": self.records_fingerprint(name), "kind": self.records_kind(name)}
+
+    def records_kind(self, name: str) -> str:
+        """What one record of ``data/<name>`` is: ``"vectors"``, ``"signals"`` or ``"images"``
+        (as stored by :meth:`add_records`; records stored without a kind follow their rank)."""
+        arr = self.records(name)
+        return arr.attrs.get("kind") or _record_kind(None, arr.shape[1:], name)
+
+
+#: What one record can be (see ``Workspace.add_records``).
+RECORD_KINDS = ("signals", "images", "vectors")
+
+
+def _record_kind(kind: str | None, record_shape: tuple[int, ...], name: str) -> str:
+    """The kind of records shaped ``record_shape``: the given one if it fits, else by rank."""
+    by_rank = "signals" if len(record_shape) == 1 else "images"
+    if kind is None:
+        return by_rank
+    if kind not in RECORD_KINDS:
+        raise InputError(problem(f"records {name!r}: kind", f"one of {RECORD_KINDS}", repr(kind),
+                                 "Pick a listed kind, or leave it out."))
+    if kind != by_rank and not (kind == "vectors" and len(record_shape) == 1):
+        raise InputError(problem(f"records {name!r}: kind {kind!r}",
+                                 f"records shaped (n, d) for vectors, {by_rank} for this shape",
+                                 f"records of shape {tuple(record_shape)}",
+                                 f"Leave the kind out (they are {by_rank}), or reshape them."))
+    return kind
 
 
 def _default_chunk_rows(shape: tuple[int, ...], dtype: np.dtype) -> int:
