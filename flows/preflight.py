@@ -51,13 +51,15 @@ def check_train(workspace: str, records: str, *, n_atoms: int | None, patch_size
     """
     ws = _open(workspace)
     shape = ws.records(records).shape
+    check_learner(method, 1 if n_atoms is None else n_atoms)
+    check_learner_options(method, learner_options or {}, TRAIN_OWN_OPTIONS)
+    if takes_coder(method):
+        default_coder_options(coder, coder_options)  # an unknown coder, named as the stage does
     options, _ = resolve(ws, records, TrainOptions(
         n_atoms=n_atoms, patch_size=patch_size, stride=stride, method=method, coder=coder,
         coder_options=coder_options, learner_options=learner_options,
         preprocessing=preprocessing, sample_patches=sample_patches))
     n_atoms = options.n_atoms
-    check_learner(method, n_atoms)
-    check_learner_options(method, learner_options or {}, TRAIN_OWN_OPTIONS)
     check_sample_size(options.sample_patches, n_atoms)
     geometry = PatchGeometry.for_records(shape[1:], options.patch_size, options.stride)
     if takes_coder(method):
@@ -83,8 +85,9 @@ def check_pool(workspace: str, records: str, *, dict_id: str | None, regions: An
     ws = _open(workspace)
     ws.records(records)
     dict_id = promoted_or_named(ws, dict_id)
-    check_regions(PatchGeometry.from_attrs(ws.load_dictionary(dict_id).attrs["geometry"]).grid,
-                  _tuple(regions))
+    if regions is not None:  # otherwise chosen within the grid
+        check_regions(PatchGeometry.from_attrs(ws.load_dictionary(dict_id).attrs["geometry"]).grid,
+                      _tuple(regions))
 
 
 def check_evaluate(workspace: str, records: str, *, dict_id: str | None, labels: str | None,

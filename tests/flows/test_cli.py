@@ -103,13 +103,14 @@ PATCHES = ["--patch-size", "128", "--stride", "128"]
 
 @pytest.mark.parametrize("argv, words", [
     (["train", "{ws}", "vib", "--atoms", "-3"], "n_atoms: expected a positive integer, found -3"),
-    (["train", "{ws}", "vib", "--patch-size", "5000"], "patch size: expected between 1 and the record's extent 2048"),
+    (["train", "{ws}", "vib", "--patch-size", "5000"], "patch_size: expected 1..2048 on axis 0 (the record's extent), found 5000. Use patch_size ≤ 2048"),
     (["train", "{ws}", "vibration"], "data/vibration: expected an existing records"),
     (["train", "{ws}", "vib", "--coder", "omq"], "coding method: expected one of"),
     (["train", "{ws}", "vib", "--method", "onlin"], "learning method: expected one of"),
     (["train", "{ws}", "vib", "--sample", "10"], "sample_patches: expected at least n_atoms = 128"),
     (["train", "{ws}", "vib", "--workers", "0"], "workers: expected a positive integer, found 0"),
-    (["nightly", "{ws}", "vib"], "regions: expected 1..[1] parts per axis"),
+    (["nightly", "{ws}", "vib", "--patch-size", "2048", "--atoms", "8", "--regions", "4"],
+     "regions: expected 1..[1] parts per axis"),
     (["encode", "{ws}", "vib"], "expected a promoted dictionary or --dictionary"),
     (["encode", "{ws}", "vib", "--dictionary", "d-absent"], "d-absent"),
     (["nightly", "{ws}", "vib", *PATCHES, "--regions", "40"],
