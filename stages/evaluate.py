@@ -5,9 +5,22 @@ Protocol
 1. **Rows.** All labelled records, or a stratified seeded sample of ``max_rows`` of them
    (so memory stays bounded on a large archive). The rows depend only on the labels,
    ``max_rows`` and the seed.
-2. **Folds.** Stratified ``folds``-fold cross-validation, shuffled with the seed. Every
-   row is predicted exactly once, by the model that did not see it ("out-of-fold"
-   predictions); scores are computed on those predictions over all rows.
+2. **Split** (option ``split``, :data:`~atomline.stages.options.SPLITS`):
+
+   ``kfold``     (the default) stratified ``folds``-fold cross-validation, shuffled with
+                 the seed. Every row is predicted exactly once, by the model that did not
+                 see it ("out-of-fold" predictions); scores are over all rows.
+   ``test-set``  the classifier is fitted on the rows of 1. and scores every row of the
+                 named ``test_records`` (labels of the same name) that has features; the
+                 test records must have rows of the records' shape and features pooled by
+                 the same dictionary, coder and pooling (:func:`check_test_records`; the
+                 flows encode and pool them).
+   ``time``      row order is time: the rows of 1. are the newest ``max_rows`` (not a
+                 sample), the older ones train and the newest ``ceil(test_share · n)``
+                 are scored.
+
+   Every feature set, the bootstrap and the learning curve use the same split; scores,
+   intervals and confusion matrices are over the scored rows only.
 3. **Classifier.** Standardisation fitted on the training folds, then a linear
    scikit-learn classifier: ``"logistic"`` (``LogisticRegression``, the default) or
    ``"linear-svm"`` (``LinearSVC``), both L2-regularised with strength ``1/C``.
@@ -30,14 +43,17 @@ Protocol
 5. **Scores**: accuracy, balanced accuracy, macro-F1 (see :mod:`.scoring`), a per-class
    report and the confusion matrix of every set; per-fold accuracies.
 6. **Intervals**: for every baseline, a paired percentile bootstrap over the rows of
-   the difference ``features − baseline`` (:func:`.scoring.paired_bootstrap`). The
+   the difference ``features − baseline`` (:func:`.scoring.paired_bootstrap`), over the
+   scored rows. The
    interval reflects which rows were sampled, not the randomness of training.
 7. **Learning curve**: the same folds with each training part cut (stratified, seeded)
    to a share of its rows; accuracy of ``features`` and ``raw`` against the number of
    labelled training rows.
 
 Each evaluation is appended to ``evaluations/<run-id>`` (never rewritten) with which
-dictionary, coder, pooling and data it measured, and its out-of-fold predictions, so two
+dictionary, coder, pooling and data it measured, the split (``protocol``: ``split``,
+``test_records``, ``test_share``; ``scored_records`` and ``scored_labels`` name whose rows
+the stored ``rows`` and predictions are), and its predictions, so two
 evaluations on the same rows can be compared later. It is keyed by what it measures
 (:func:`evaluation_key`): a rerun with the same inputs returns the complete evaluation
 with that key (``reused`` in the manifest) instead of adding a second one. The nightly
@@ -57,14 +73,16 @@ from .encode import codes_path
 from .errors import BadChunk, InputError, problem
 from .pool import features_path
 from .kernels.classify import (class_report, cross_predict, curve_points, curve_report,
-                               labelled_rows, make_classifier, stratified_folds)
+                               holdout_split, labelled_rows, make_classifier, scored_positions,
+                               stratified_folds, time_split)
 from .kernels.features import FeatureChain, baseline_atoms, row_blocks, sample_patches, take_rows
 from .kernels.prep import Normaliser, PatchGeometry
 from .kernels.scoring import confusion, paired_bootstrap, scores_from_confusion
 from .options import BASELINES, CLASSIFIERS, DEFAULT_CURVE, EvaluateOptions
 from .workspace import Workspace, fingerprint_params, iter_row_chunks
 
-__all__ = ["evaluate_features", "evaluate_task", "evaluation_key", "CLASSIFIERS", "BASELINES"]
+__all__ = ["evaluate_features", "evaluate_task", "evaluation_key", "check_test_records",
+           "CLASSIFIERS", "BASELINES"]
 
 # CLASSIFIERS, BASELINES and DEFAULT_CURVE are declared with the options; on the learning
 # curve the full share is the main result and is added to the curve.
@@ -91,7 +109,9 @@ def evaluate_features(
     dict_id : str
         Features ``features/<dict_id>/<records>`` must be complete.
     options : EvaluateOptions
-        ``folds`` (stratified, ≥ 2; every class needs at least this many rows),
+        ``split`` ({"kfold", "test-set", "time"}, see the module's protocol) with its
+        ``test_records`` / ``test_share``, ``folds`` (stratified, ≥ 2; every class needs
+        at least this many rows; k-fold only),
         ``classifier`` ({"logistic", "linear-svm"}) and its ``C``, ``max_rows`` (at most
         this many labelled rows, a stratified seeded sample), ``seed`` (the row sample,
         the folds, the baselines and the bootstrap), ``baselines`` (any of
@@ -116,7 +136,9 @@ def evaluate_features(
     Returns
     -------
     dict
-        ``run_id``, ``dict_id``, ``n_rows``, ``folds``, ``coder``, ``pooling``; one
+        ``run_id``, ``dict_id``, ``n_rows`` (rows scored), ``n_train`` (rows the classifier
+        learnt from; all rows for k-fold), ``split``, ``test_records``, ``folds``,
+        ``coder``, ``pooling``; one
         score dict per feature set (``features``, ``raw``, …: accuracy,
         balanced_accuracy, macro_f1, fold_accuracy); ``versus`` (per baseline, per
         score: difference features − baseline with its interval); ``learning_curve``;
@@ -126,36 +148,51 @@ def evaluate_features(
     # Every option was checked when ``options`` was made (EvaluateOptions.__post_init__).
     folds, classifier, C, max_rows = options.folds, options.classifier, options.C, options.max_rows
     seed, baselines, learning_curve = options.seed, options.baselines, options.learning_curve
-    n_boot, on_bad_chunk = options.n_boot, options.on_bad_chunk
+    n_boot, on_bad_chunk, split = options.n_boot, options.on_bad_chunk, options.split
     ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
-    out = ws.output(features_path(dict_id, records))
-    if not out.complete:
-        raise InputError(problem(features_path(dict_id, records), "complete features",
-                                 f"{int((~out.done_flags()).sum())} chunk(s) not pooled",
-                                 "Run the encode and pool flows first."))
+    test_records = options.test_records if split == "test-set" else None
+    if test_records is not None:
+        check_test_records(ws, records, test_records, dict_id)
     labels_name = labels or records
-    y_all = ws.labels(labels_name)
-    n_records = out.group["values"].shape[0]
-    if y_all.shape[0] != n_records:
-        raise InputError(problem(f"labels {labels_name!r}", f"{n_records} labels (one per record)",
-                                 str(y_all.shape[0]), "Add labels for these records (overwrite=True)."))
-    lacking = _skipped_rows(out, n_records)
-    if on_bad_chunk == "skip":  # leave out the rows of features chunks that do not decode
-        lacking = np.union1d(lacking, _unreadable_rows(out))
-    rows = labelled_rows(y_all, max_rows, seed, folds, exclude=lacking)
-    rows_fingerprint = fingerprint_params({"rows": rows.tolist(), "y": y_all[rows].tolist()})
+    out, y_all, lacking = _labelled_features(ws, records, dict_id, labels_name, on_bad_chunk)
+    rows = labelled_rows(y_all, max_rows, seed, folds if split == "kfold" else None,
+                         exclude=lacking, newest=split == "time")
+    # ``parts``: the (records, rows) whose features are stacked, training records first.
+    parts = [(records, rows)]
+    y_rows = y_all[rows]
+    if test_records is not None:
+        test_out, y_test_all, test_lacking = _labelled_features(ws, test_records, dict_id,
+                                                                test_records, on_bad_chunk)
+        test_rows = np.setdiff1d(np.arange(y_test_all.shape[0]), test_lacking)
+        parts.append((test_records, test_rows))
+        y_rows = np.concatenate([y_rows, y_test_all[test_rows]])
+    scored_records = test_records or records
+    scored_labels = test_records or labels_name
+    split_info = {"split": split, "test_records": test_records,
+                  "test_share": float(options.test_share) if split == "time" else None}
+    rows_fingerprint = fingerprint_params({"rows": [r.tolist() for _, r in parts],
+                                           "y": y_rows.tolist(), **split_info})
     protocol = {"classifier": classifier, "C": C, "folds": folds, "seed": seed,
-                "max_rows": max_rows, "n_boot": n_boot}
+                "max_rows": max_rows, "n_boot": n_boot, **split_info}
+    test_fingerprints = ({"records": ws.records_fingerprint(test_records),
+                          "features": test_out.attrs["fingerprint"]} if test_records else None)
     key = evaluation_key(records=records, labels=labels_name, dict_id=dict_id,
                          records_fingerprint=ws.records_fingerprint(records),
                          features_fingerprint=out.attrs["fingerprint"], rows_fingerprint=rows_fingerprint,
-                         protocol=protocol, baselines=baselines, learning_curve=learning_curve, tag=tag)
+                         protocol=protocol, baselines=baselines, learning_curve=learning_curve, tag=tag,
+                         test_fingerprints=test_fingerprints)
     earlier = ws.find_evaluation(key)
     if earlier is not None:
         return _manifest(earlier, reused=True)
-    classes, y = np.unique(y_all[rows], return_inverse=True)
+    classes, y = np.unique(y_rows, return_inverse=True)
     n_classes = classes.size
-    fold_parts = stratified_folds(y, folds, seed)
+    if split == "kfold":
+        fold_parts = stratified_folds(y, folds, seed)
+    elif split == "time":
+        fold_parts = time_split(y, options.test_share)
+    else:
+        fold_parts = holdout_split(rows.size, parts[1][1].size)
+    scored = scored_positions(fold_parts)  # every row for k-fold; the test part otherwise
     fit = dict(classifier=classifier, C=C, seed=seed)
 
     predictions: dict[str, np.ndarray] = {}
@@ -164,21 +201,28 @@ def evaluate_features(
     sets = ("features",) + tuple(b for b in BASELINES if b in baselines)
     with threadpool_limits(limits=blas_threads):
         for name in sets:
-            X = _feature_set(ws, name, records, dict_id, rows, seed)
-            predictions[name], fold_scores[name] = cross_predict(X, y, fold_parts, **fit)
+            X = _feature_set(ws, name, dict_id, parts, seed)
+            pred, fold_scores[name] = cross_predict(X, y, fold_parts, **fit)
+            predictions[name] = pred[scored]
             if learning_curve and name in ("features", "raw"):
                 curve_inputs[name] = curve_points(X, y, fold_parts, learning_curve, seed, fit)
             del X  # one feature set in memory at a time
 
-    metrics, per_class, arrays = {}, {}, {"rows": rows}
+    y_scored = y[scored]
+    scored_rows = np.concatenate([r for _, r in parts])[scored]
+    metrics, per_class = {}, {}
+    arrays = {"rows": scored_rows}
+    if split != "kfold":  # one training part; its positions index the training records' rows
+        arrays["train_rows"] = rows[fold_parts[0][0]]
     for name, pred in predictions.items():
-        conf = confusion(y, pred, n_classes)
+        conf = confusion(y_scored, pred, n_classes)
         metrics[name] = {k: float(v) for k, v in scores_from_confusion(conf).items()}
         metrics[name]["fold_accuracy"] = fold_scores[name]
-        per_class[name] = class_report(y, pred, classes)
+        per_class[name] = class_report(y_scored, pred, classes)
         arrays[f"pred_{name}"] = classes[pred]
         arrays[f"confusion_{name}"] = conf
-    versus = {b: paired_bootstrap(y, predictions["features"], predictions[b], n_classes,
+    # Paired over the scored rows: every set predicted the same rows.
+    versus = {b: paired_bootstrap(y_scored, predictions["features"], predictions[b], n_classes,
                                   n_boot=n_boot, seed=seed)
               for b in sets[1:]}
     curve = curve_report(curve_inputs, metrics, fold_parts, learning_curve)
@@ -188,8 +232,11 @@ def evaluate_features(
     attrs = {
         "records": records,
         "labels": labels_name,
+        "scored_records": scored_records,
+        "scored_labels": scored_labels,
         "dict_id": dict_id,
         "records_fingerprint": ws.records_fingerprint(records),
+        "test_fingerprints": test_fingerprints,
         "dictionary_fingerprint": cattrs["dictionary_fingerprint"],
         "features_fingerprint": fattrs["fingerprint"],
         "rows_fingerprint": rows_fingerprint,
@@ -198,7 +245,8 @@ def evaluate_features(
         "pooling": fattrs["params"],
         "protocol": protocol,
         "classes": classes.tolist(),
-        "n_rows": int(rows.size),
+        "n_rows": int(scored.size),
+        "n_train": int(arrays["train_rows"].size if split != "kfold" else rows.size),
         "rows_lacking": int(lacking.size),
         "tag": tag,
         "metrics": metrics,
@@ -210,14 +258,79 @@ def evaluate_features(
     return _manifest(ws.evaluation(run_id), reused=False)
 
 
+def check_test_records(ws: Workspace, records: str, test_records: str, dict_id: str | None = None) -> None:
+    """Refuse test records that cannot be scored beside ``records``.
+
+    They must be other records of the same shape per row (so the same dictionary codes
+    them), and, when ``dict_id`` is given and their features exist, pooled with the same
+    coder and pooling as the training records' (features of the same width).
+
+    Parameters
+    ----------
+    ws : Workspace
+    records, test_records : str
+    dict_id : str, optional
+    """
+    if test_records == records:
+        raise InputError(problem("test_records", "records other than the evaluated ones",
+                                 repr(test_records), "Name a separate test set, or use --split kfold."))
+    train_shape = tuple(ws.records(records).shape[1:])
+    test_shape = tuple(ws.records(test_records).shape[1:])
+    if test_shape != train_shape:
+        raise InputError(problem(f"test records {test_records!r}",
+                                 f"rows of the training records' shape {train_shape}",
+                                 f"rows of shape {test_shape}",
+                                 "Score a test set of the same width and shape as the records."))
+    if dict_id is None:
+        return
+    if not all(ws.has_output(features_path(dict_id, r)) for r in (records, test_records)):
+        return  # not pooled yet: the stage's check of complete features names what is missing
+    train_out, test_out = (ws.output(features_path(dict_id, r)) for r in (records, test_records))
+    same = {"coder": (ws.output(codes_path(dict_id, r)).attrs["params"] for r in (records, test_records)),
+            "pooling": (o.attrs["params"] for o in (train_out, test_out))}
+    for what, (a, b) in same.items():
+        if a != b:
+            raise InputError(problem(f"features of test records {test_records!r}",
+                                     f"the training records' {what} {a}", str(b),
+                                     "Encode and pool the test records with the same options "
+                                     "(overwrite=True)."))
+    width = (train_out.group["values"].shape[1], test_out.group["values"].shape[1])
+    if width[0] != width[1]:
+        raise InputError(problem(f"features of test records {test_records!r}",
+                                 f"{width[0]} features per row", str(width[1]),
+                                 "Pool the test records with the same options."))
+
+
+def _labelled_features(ws: Workspace, records: str, dict_id: str, labels_name: str,
+                       on_bad_chunk: str):
+    """The complete features output of ``records``, its labels, and the rows lacking features."""
+    out = ws.output(features_path(dict_id, records))
+    if not out.complete:
+        raise InputError(problem(features_path(dict_id, records), "complete features",
+                                 f"{int((~out.done_flags()).sum())} chunk(s) not pooled",
+                                 "Run the encode and pool flows first."))
+    y_all = ws.labels(labels_name)
+    n_records = out.group["values"].shape[0]
+    if y_all.shape[0] != n_records:
+        raise InputError(problem(f"labels {labels_name!r}", f"{n_records} labels (one per record)",
+                                 str(y_all.shape[0]), "Add labels for these records (overwrite=True)."))
+    lacking = _skipped_rows(out, n_records)
+    if on_bad_chunk == "skip":  # leave out the rows of features chunks that do not decode
+        lacking = np.union1d(lacking, _unreadable_rows(out))
+    return out, y_all, lacking
+
+
 def evaluation_key(*, records: str, labels: str, dict_id: str, records_fingerprint: str,
                    features_fingerprint: str, rows_fingerprint: str, protocol: dict,
-                   baselines, learning_curve, tag: str) -> str:
+                   baselines, learning_curve, tag: str,
+                   test_fingerprints: dict | None = None) -> str:
     """What an evaluation measures, as a digest: equal keys give equal evaluations.
 
     The features' fingerprint covers the dictionary, the coder and the pooling; the rows'
     fingerprint covers the labels, ``max_rows``, the seed and rows lacking features;
-    ``protocol`` holds the classifier options, folds, seed and bootstrap size. The
+    ``protocol`` holds the classifier options, folds, seed, bootstrap size and the split
+    (``split``, ``test_records``, ``test_share``); ``test_fingerprints`` the test records'
+    and their features' fingerprints with split ``test-set`` (else None). The
     ``tag`` is part of it because the history reads candidates and promoted-dictionary
     evaluations apart. BLAS threads are not: they do not change the result.
 
@@ -231,13 +344,17 @@ def evaluation_key(*, records: str, labels: str, dict_id: str, records_fingerpri
         "records_fingerprint": records_fingerprint, "features_fingerprint": features_fingerprint,
         "rows_fingerprint": rows_fingerprint, "protocol": protocol,
         "baselines": [b for b in BASELINES if b in baselines],
-        "learning_curve": [float(s) for s in learning_curve], "tag": tag})
+        "learning_curve": [float(s) for s in learning_curve], "tag": tag,
+        "test_fingerprints": test_fingerprints})
 
 
 def _manifest(attrs: dict, *, reused: bool) -> dict:
     """The stage's manifest from a stored evaluation's attributes (new or found again)."""
     manifest = {"run_id": attrs["run_id"], "dict_id": attrs["dict_id"], "n_rows": attrs["n_rows"],
                 "rows_lacking": attrs["rows_lacking"], "folds": attrs["protocol"]["folds"],
+                "split": attrs["protocol"].get("split", "kfold"),
+                "test_records": attrs["protocol"].get("test_records"),
+                "n_train": attrs.get("n_train", attrs["n_rows"]),
                 "coder": attrs["coder"], "pooling": attrs["pooling"], "tag": attrs["tag"],
                 "versus": attrs["versus"], "learning_curve": attrs["learning_curve"], "reused": reused}
     manifest.update(attrs["metrics"])
@@ -270,25 +387,44 @@ def _records_reader(ws: Workspace, records: str, arr):
     return lambda c: ws.read_chunk(records, c, arr)
 
 
-def _feature_set(ws: Workspace, name: str, records: str, dict_id: str, rows: np.ndarray,
+def _feature_set(ws: Workspace, name: str, dict_id: str, parts: list[tuple[str, np.ndarray]],
                  seed: int) -> np.ndarray:
-    """ndarray of shape (len(rows), F_name), float32: one feature set of the rows."""
+    """ndarray of shape (sum of len(rows), F_name), float32: one feature set of the rows of
+    each ``(records, rows)`` part, stacked in order; a dictionary baseline is built from the
+    first part's (the training records') patches only."""
     if name == "features":
-        out = ws.output(features_path(dict_id, records))
-        values = out.group["values"]
-        n, chunk_rows = values.shape[0], values.chunks[0]
-        return take_rows(rows, chunk_rows, lambda c: out.read(
-            "values", slice(c * chunk_rows, min(n, (c + 1) * chunk_rows))))
-    arr = ws.records(records)
+        return np.concatenate([_pooled_rows(ws, dict_id, records, rows) for records, rows in parts])
     if name == "raw":
-        raw = take_rows(rows, arr.chunks[0], _records_reader(ws, records, arr))
-        return raw.reshape(rows.size, -1).astype(np.float32)
-    return _dictionary_baseline(ws, name, arr, records, dict_id, rows, seed)
+        blocks = []
+        for records, rows in parts:
+            arr = ws.records(records)
+            raw = take_rows(rows, arr.chunks[0], _records_reader(ws, records, arr))
+            blocks.append(raw.reshape(rows.size, -1).astype(np.float32))
+        return np.concatenate(blocks)
+    chain = _dictionary_baseline(ws, name, dict_id, *parts[0], seed)
+    blocks = []
+    for records, rows in parts:
+        arr = ws.records(records)
+        # Chunk by chunk, coded in the records' dtype as the encode stage codes them.
+        blocks.extend(chain.features(block)
+                      for block in row_blocks(rows, arr.chunks[0], _records_reader(ws, records, arr)))
+    return np.concatenate(blocks)
 
 
-def _dictionary_baseline(ws: Workspace, kind: str, arr, records: str, dict_id: str,
-                         rows: np.ndarray, seed: int) -> np.ndarray:
-    """Features from a random-patch or PCA dictionary, coded and pooled like the real ones."""
+def _pooled_rows(ws: Workspace, dict_id: str, records: str, rows: np.ndarray) -> np.ndarray:
+    """ndarray of shape (len(rows), F), float32: the stored pooled features of the rows."""
+    out = ws.output(features_path(dict_id, records))
+    values = out.group["values"]
+    n, chunk_rows = values.shape[0], values.chunks[0]
+    return take_rows(rows, chunk_rows, lambda c: out.read(
+        "values", slice(c * chunk_rows, min(n, (c + 1) * chunk_rows))))
+
+
+def _dictionary_baseline(ws: Workspace, kind: str, dict_id: str, records: str, rows: np.ndarray,
+                         seed: int) -> FeatureChain:
+    """The records→features chain of a random-patch or PCA dictionary built from a sample of
+    the rows' patches, coding and pooling like the real features."""
+    arr = ws.records(records)
     stored = ws.load_dictionary(dict_id)
     cattrs = ws.output(codes_path(dict_id, records)).attrs
     pooling = ws.output(features_path(dict_id, records)).attrs["params"]
@@ -301,12 +437,9 @@ def _dictionary_baseline(ws: Workspace, kind: str, arr, records: str, dict_id: s
     options = dict(cattrs["params"]["coder_options"])
     if "n_nonzero" in options:
         options["n_nonzero"] = min(options["n_nonzero"], atoms.shape[0])
-    chain = FeatureChain(geometry, atoms, cattrs["params"]["coder"], options, normaliser,
-                         regions=pooling["regions"], reduce=pooling["reduce"],
-                         split_sign=pooling["split_sign"])
-    # Chunk by chunk, coded in the records' dtype as the encode stage codes them.
-    return np.concatenate([chain.features(block)
-                           for block in row_blocks(rows, arr.chunks[0], read)])
+    return FeatureChain(geometry, atoms, cattrs["params"]["coder"], options, normaliser,
+                        regions=pooling["regions"], reduce=pooling["reduce"],
+                        split_sign=pooling["split_sign"])
 
 
 #: The evaluate stage as a Prefect task.

@@ -84,8 +84,9 @@ def compare_evaluations(
     ----------
     workspace : Workspace or str
     run_a, run_b : str
-        Evaluation run ids; both must have scored the same rows with the same labels
-        (same ``rows_fingerprint``), e.g. two dictionaries evaluated with the same seed.
+        Evaluation run ids; both must have scored the same rows with the same labels and
+        split (same ``rows_fingerprint``: k-fold, the same test records, or the same
+        newest share), e.g. two dictionaries evaluated with the same options.
     n_boot, seed
         As :func:`.scoring.paired_bootstrap`.
 
@@ -102,11 +103,14 @@ def compare_evaluations(
                                      "Pass run ids from the evaluation history."))
     if info[run_a]["rows_fingerprint"] != info[run_b]["rows_fingerprint"]:
         raise InputError(problem(f"evaluations {run_a} and {run_b}", "the same rows and labels",
-                                 "different rows (other seed, max_rows, or data)",
-                                 "Evaluate both with the same seed and max_rows."))
+                                 "different rows (other split, seed, max_rows, or data)",
+                                 "Evaluate both with the same split, seed and max_rows."))
     a, b = ws.evaluation_arrays(run_a), ws.evaluation_arrays(run_b)
     classes = np.asarray(info[run_a]["classes"])
-    y = np.searchsorted(classes, ws.labels(info[run_a]["labels"])[a["rows"]])
+    # The labels of the rows scored: the test records' own with split test-set (evaluations
+    # stored before splits existed scored their own records).
+    scored_labels = info[run_a].get("scored_labels", info[run_a]["labels"])
+    y = np.searchsorted(classes, ws.labels(scored_labels)[a["rows"]])
     code_of = lambda pred: np.searchsorted(classes, pred)  # noqa: E731 - two uses below
     return paired_bootstrap(y, code_of(a["pred_features"]), code_of(b["pred_features"]),
                             classes.size, n_boot=n_boot, seed=seed)

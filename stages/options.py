@@ -44,7 +44,7 @@ from .kernels.scoring import SCORES
 __all__ = ["TrainOptions", "EncodeOptions", "PoolOptions", "EvaluateOptions", "ReportOptions",
            "GateOptions", "DriftOptions", "RunnerOptions", "OPTION_GROUPS", "option_help",
            "deciding", "CODERS", "LEARNERS", "BAD_CHUNK_CHOICES", "REDUCTIONS", "CLASSIFIERS",
-           "BASELINES", "DEFAULT_CURVE", "RETRAIN", "RUNNERS"]
+           "BASELINES", "DEFAULT_CURVE", "SPLITS", "RETRAIN", "RUNNERS"]
 
 #: Coders by trade name (the coding kernels' registry).
 CODERS = tuple(sorted(coding.METHODS))
@@ -60,6 +60,13 @@ CLASSIFIERS = ("logistic", "linear-svm")
 BASELINES = ("raw", "random_patches", "pca")
 #: Shares of each fold's training rows on the learning curve.
 DEFAULT_CURVE = (0.05, 0.15, 0.4)
+#: How the evaluate stage splits rows into those the classifier learns from and those it scores.
+SPLITS = {
+    "kfold": "stratified k-fold cross-validation over the records; every row scored once",
+    "test-set": "fit on the records, score the named test records (encoded and pooled by the "
+                "same dictionary, coder and pooling)",
+    "time": "row order is time: fit on the older rows, score the newest test_share of them",
+}
 #: When the nightly flow trains a candidate dictionary.
 RETRAIN = {
     "always": "train a candidate on the current archive every run (appended rows change it)",
@@ -284,7 +291,15 @@ class EvaluateOptions:
 
     __pydantic_config__ = _SCHEMA
 
-    folds: int = _option(5, help="stratified cross-validation folds")
+    split: str = _option("kfold", choices=tuple(SPLITS),
+                         help="which rows train and which are scored: kfold (stratified folds), "
+                              "test-set (score --test-records), time (score the newest "
+                              "--test-share of the rows, in row order)")
+    test_records: str | None = _option(
+        help="records scored with --split test-set; labels of the same name; the flows encode "
+             "and pool them with the evaluated dictionary")
+    test_share: float = _option(0.2, help="share of the newest rows scored with --split time")
+    folds: int = _option(5, help="stratified cross-validation folds (--split kfold)")
     classifier: str = _option("logistic", choices=CLASSIFIERS,
                               help="linear classifier on standardised features")
     C: float = _option(1.0, help="inverse regularisation strength of the classifier")
@@ -302,6 +317,16 @@ class EvaluateOptions:
 
     def __post_init__(self) -> None:
         _set(self, baselines=tuple(self.baselines), learning_curve=tuple(self.learning_curve))
+        _one_of("split", self.split, tuple(SPLITS), "Pick a listed split.")
+        if (self.split == "test-set") != bool(self.test_records):
+            raise InputError(problem(
+                "test_records", "the name of the test records exactly with split 'test-set'",
+                f"test_records={self.test_records!r} with split {self.split!r}",
+                "Pass both --split test-set and --test-records NAME, or neither."))
+        if not (isinstance(self.test_share, numbers.Real) and not isinstance(self.test_share, bool)
+                and 0 < self.test_share < 1):
+            raise InputError(problem("test_share", "a share strictly between 0 and 1",
+                                     repr(self.test_share), "Use e.g. 0.2."))
         _positive_int("folds", self.folds, "Use e.g. 5 folds.", low=2)
         _one_of("classifier", self.classifier, CLASSIFIERS, "Pick a listed classifier.")
         _finite("C", self.C, 0.0, "Use e.g. C=1.0.", strict=True)

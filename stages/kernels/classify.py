@@ -6,6 +6,9 @@
 * :func:`labelled_rows` — the rows to evaluate: all but those excluded, or a stratified
   seeded sample of ``max_rows``;
 * :func:`stratified_folds` — shuffled, seeded stratified folds;
+* :func:`holdout_split` / :func:`time_split` — one training part and one scored part: a
+  named test set after the training rows, or the newest share of rows in row order;
+* :func:`scored_positions` — the rows a split scores (every row for k-fold);
 * :func:`cross_predict` — out-of-fold predictions (every row predicted once, by the model
   that did not see it);
 * :func:`class_report` — precision, recall, F1 and support per class;
@@ -27,7 +30,8 @@ from sklearn.svm import LinearSVC
 
 from ..errors import InputError, problem
 
-__all__ = ["CLASSIFIERS", "make_classifier", "check_folds", "labelled_rows", "stratified_folds",
+__all__ = ["CLASSIFIERS", "make_classifier", "check_folds", "check_training_classes",
+           "labelled_rows", "stratified_folds", "holdout_split", "time_split", "scored_positions",
            "cross_predict", "class_report", "curve_points", "curve_report"]
 
 CLASSIFIERS = ("logistic", "linear-svm")
@@ -78,8 +82,25 @@ def check_folds(y: np.ndarray, folds: int) -> None:
                                  "Label more records or use fewer folds."))
 
 
-def labelled_rows(y: np.ndarray, max_rows: int, seed: int, folds: int,
-                  exclude: np.ndarray | None = None) -> np.ndarray:
+def check_training_classes(y_train: np.ndarray, where: str = "labels") -> None:
+    """A classifier fitted on one part of the rows needs two or more classes in that part.
+
+    Parameters
+    ----------
+    y_train : ndarray of shape (n,)
+        Labels of the training rows.
+    where : str
+        What the rows are, for the message.
+    """
+    classes = np.unique(y_train)
+    if classes.size < 2:
+        raise InputError(problem(where, "at least two classes among the training rows",
+                                 f"classes {classes.tolist()} in {y_train.shape[0]} row(s)",
+                                 "Label more records, or score a smaller share of them."))
+
+
+def labelled_rows(y: np.ndarray, max_rows: int, seed: int, folds: int | None,
+                  exclude: np.ndarray | None = None, *, newest: bool = False) -> np.ndarray:
     """The rows to evaluate: all rows but ``exclude``, or a stratified seeded subsample.
 
     Parameters
@@ -89,10 +110,14 @@ def labelled_rows(y: np.ndarray, max_rows: int, seed: int, folds: int,
     max_rows : int
         At most this many rows (``train_test_split`` stratified on ``y``, seeded).
     seed : int
-    folds : int
-        Checked against the class counts of the rows kept (:func:`check_folds`).
+    folds : int or None
+        Checked against the class counts of the rows kept (:func:`check_folds`); ``None``
+        (a split without folds) only asks for two classes.
     exclude : ndarray of int, optional
         Rows left out (e.g. those without features).
+    newest : bool
+        Keep the last ``max_rows`` rows instead of a sample (row order is time: a sample
+        would mix old rows into the newest ones).
 
     Returns
     -------
@@ -102,9 +127,14 @@ def labelled_rows(y: np.ndarray, max_rows: int, seed: int, folds: int,
     keep = np.ones(y.shape[0], dtype=bool)
     if exclude is not None:
         keep[exclude] = False
-    check_folds(y[keep], folds)
+    if folds is None:
+        check_training_classes(y[keep])
+    else:
+        check_folds(y[keep], folds)
     rows = np.flatnonzero(keep)
-    if rows.size > max_rows:
+    if rows.size > max_rows and newest:
+        rows = rows[-max_rows:]
+    elif rows.size > max_rows:
         rows, _ = train_test_split(rows, train_size=max_rows, stratify=y[rows], random_state=seed)
     return np.sort(rows)
 
@@ -127,6 +157,57 @@ def stratified_folds(y: np.ndarray, folds: int, seed: int) -> Folds:
     return list(splitter.split(np.zeros(y.shape[0]), y))
 
 
+def holdout_split(n_train: int, n_test: int) -> Folds:
+    """One fold: the first ``n_train`` positions train, the next ``n_test`` are scored.
+
+    Parameters
+    ----------
+    n_train, n_test : int
+        Rows of the training records and of the test records, stacked in this order.
+
+    Returns
+    -------
+    list of one (ndarray, ndarray), int64
+    """
+    return [(np.arange(n_train), np.arange(n_train, n_train + n_test))]
+
+
+def time_split(y: np.ndarray, share: float) -> Folds:
+    """One fold in row order: the older rows train, the newest ``ceil(share · n)`` are scored.
+
+    Parameters
+    ----------
+    y : ndarray of shape (n,)
+        Labels in row (time) order.
+    share : float in (0, 1)
+
+    Returns
+    -------
+    list of one (ndarray, ndarray), int64
+    """
+    n = y.shape[0]
+    n_test = int(np.ceil(share * n))
+    if n_test >= n:
+        raise InputError(problem("test_share", f"a share leaving training rows among {n}",
+                                 f"{share} scores all {n}", "Use a smaller --test-share."))
+    check_training_classes(y[: n - n_test], "labels of the older rows")
+    return [(np.arange(n - n_test), np.arange(n - n_test, n))]
+
+
+def scored_positions(folds: Folds) -> np.ndarray:
+    """The positions a split scores: its test parts, sorted (every row for k-fold).
+
+    Parameters
+    ----------
+    folds : list of (train positions, test positions)
+
+    Returns
+    -------
+    ndarray of shape (m,), int64
+    """
+    return np.sort(np.concatenate([test for _, test in folds])).astype(np.int64)
+
+
 def cross_predict(
     X: np.ndarray, y: np.ndarray, folds: Folds, *,
     classifier: str = "logistic", C: float = 1.0, seed: int = 0,
@@ -138,13 +219,14 @@ def cross_predict(
     X : ndarray of shape (n, F)
     y : ndarray of shape (n,), int
     folds : list of (train positions, test positions)
-        Positions into ``X``; the test parts cover every row once.
+        Positions into ``X``; no row is in two test parts.
     classifier, C, seed
         As :func:`make_classifier`.
 
     Returns
     -------
     pred : ndarray of shape (n,), int64
+        -1 at rows no test part holds (the training rows of a held-out split).
     fold_accuracy : list of float
         Accuracy on each fold's test part.
     """
