@@ -78,11 +78,11 @@ from .kernels.classify import (class_report, cross_predict, curve_points, curve_
 from .kernels.features import FeatureChain, baseline_atoms, row_blocks, sample_patches, take_rows
 from .kernels.prep import Normaliser, PatchGeometry
 from .kernels.scoring import confusion, paired_bootstrap, scores_from_confusion
-from .options import BASELINES, CLASSIFIERS, DEFAULT_CURVE, EvaluateOptions
+from .options import BASELINES, CLASSIFIERS, DEFAULT_CURVE, EncodeOptions, EvaluateOptions, PoolOptions
 from .workspace import Workspace, fingerprint_params, iter_row_chunks
 
 __all__ = ["evaluate_features", "evaluate_task", "evaluation_key", "check_test_records",
-           "CLASSIFIERS", "BASELINES"]
+           "coding_of", "CLASSIFIERS", "BASELINES"]
 
 # CLASSIFIERS, BASELINES and DEFAULT_CURVE are declared with the options; on the learning
 # curve the full share is the main result and is added to the curve.
@@ -299,6 +299,27 @@ def check_test_records(ws: Workspace, records: str, test_records: str, dict_id: 
         raise InputError(problem(f"features of test records {test_records!r}",
                                  f"{width[0]} features per row", str(width[1]),
                                  "Pool the test records with the same options."))
+
+
+def coding_of(ws: Workspace, records: str, dict_id: str) -> tuple[EncodeOptions, PoolOptions]:
+    """The encode and pool options that made ``features/<dict_id>/<records>``, so other
+    records (a test set) are coded and pooled the same way.
+
+    Parameters
+    ----------
+    ws : Workspace
+    records, dict_id : str
+        The codes and features of these records must exist.
+
+    Returns
+    -------
+    (EncodeOptions, PoolOptions)
+    """
+    coded = ws.output(codes_path(dict_id, records)).attrs["params"]
+    pooled = ws.output(features_path(dict_id, records)).attrs["params"]
+    return (EncodeOptions(coder=coded["coder"], coder_options=dict(coded["coder_options"])),
+            PoolOptions(reduce=pooled["reduce"], split_sign=pooled["split_sign"],
+                        regions=pooled["regions"]))
 
 
 def _labelled_features(ws: Workspace, records: str, dict_id: str, labels_name: str,

@@ -107,6 +107,24 @@ def test_compare_evaluations_of_held_out_scores_uses_the_test_labels(held_out):
         a["features"]["accuracy"] - b["features"]["accuracy"], abs=1e-12)
 
 
+def test_test_records_coded_like_the_records_give_the_same_features(held_out):
+    # What the flows do for a test set: encode and pool it with the options that made the
+    # training records' features.
+    ws, dict_id = held_out
+    if not ws.has_labels("digits_test_again"):
+        ws.add_records("digits_test_again", ws.records("digits_test")[:], chunk_rows=250)
+        ws.add_labels("digits_test_again", ws.labels("digits_test"))
+        enc, pooling = evaluate.coding_of(ws, "digits_train", dict_id)
+        assert pooling.regions == 2 and enc.coder == "omp"
+        encode.encode_chunks(ws, "digits_test_again", dict_id, encode.prepare_encode(
+            ws, "digits_test_again", dict_id, enc)["pending"], enc)
+        pool.pool_chunks(ws, "digits_test_again", dict_id, pool.prepare_pool(
+            ws, "digits_test_again", dict_id, pooling)["pending"], pooling)
+    evaluate.check_test_records(ws, "digits_train", "digits_test_again", dict_id)  # accepted
+    np.testing.assert_array_equal(ws.output(f"features/{dict_id}/digits_test_again").group["values"][:],
+                                  ws.output(f"features/{dict_id}/digits_test").group["values"][:])
+
+
 def test_test_set_of_another_shape_is_refused(held_out):
     ws, dict_id = held_out
     ws.add_records("small", np.zeros((40, 4, 4), np.float32), chunk_rows=40)
