@@ -196,17 +196,27 @@ def compare(workspace: Workspace | str, candidate_run: str, promoted_run: str, *
 
 
 def nightly_run_key(ws: Workspace, records: str, options: dict) -> str:
-    """What a nightly run decides on, as a digest: the records' and labels' content and
-    every option that can change the decision (not workers, leases, pictures or alerts).
+    """What a nightly run decides on, as a digest: the records' and labels' content (and
+    the test records' with split ``test-set``) and every option that can change the
+    decision (not workers, leases, pictures or alerts).
 
     The promoted dictionary is not part of it: a run killed after moving the pointer must
     find its own decision when rerun (see :func:`recorded_decision`).
     """
     labels = options.get("labels") or records
-    return fingerprint_params({
+    identity = {
         "records": records, "records_fingerprint": ws.records_fingerprint(records),
         "labels_fingerprint": ws.labels_fingerprint(labels) if ws.has_labels(labels) else None,
-        "options": options})
+        "options": options}
+    evaluate = options.get("evaluate") or {}
+    if evaluate.get("split") == "test-set":
+        # The test records decide too; only then is the entry there, so the keys of runs
+        # without a test set stay what they were.
+        test = evaluate["test_records"]
+        identity["test_fingerprints"] = {
+            "records": ws.records_fingerprint(test),
+            "labels": ws.labels_fingerprint(test) if ws.has_labels(test) else None}
+    return fingerprint_params(identity)
 
 
 def recorded_decision(ws: Workspace, run_key: str) -> dict | None:

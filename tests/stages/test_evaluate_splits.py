@@ -15,7 +15,7 @@ from threadpoolctl import threadpool_limits
 from atomline.stages import encode, evaluate, gate, pool, train
 from atomline.stages.errors import InputError
 from atomline.stages.kernels.classify import time_split
-from atomline.stages.options import EvaluateOptions, PoolOptions, TrainOptions
+from atomline.stages.options import EvaluateOptions, PoolOptions, TrainOptions, deciding
 from atomline.stages.workspace import Workspace
 from conftest import DIGITS_TRAIN
 
@@ -208,3 +208,18 @@ def test_split_options_are_checked():
     with pytest.raises(InputError, match="test_share"):
         EvaluateOptions(split="time", test_share=1.0)
     assert EvaluateOptions().split == "kfold"  # today's protocol stays the default
+
+
+def test_nightly_run_key_follows_the_test_records():
+    ws = Workspace.open(f"memory://heldout-key-{uuid.uuid4().hex}", create=True)
+    rng = np.random.default_rng(0)
+    for name in ("a", "b"):
+        ws.add_records(name, rng.standard_normal((20, 8)).astype(np.float32), chunk_rows=10)
+        ws.add_labels(name, np.arange(20) % 2)
+    held = {"labels": None, "evaluate": deciding(EvaluateOptions(split="test-set", test_records="b"))}
+    kfold = {"labels": None, "evaluate": deciding(EvaluateOptions())}
+    keys = (gate.nightly_run_key(ws, "a", held), gate.nightly_run_key(ws, "a", kfold))
+    ws.add_labels("b", (np.arange(20) + 1) % 2, overwrite=True)
+    # New test labels are a new decision; a k-fold run never reads them.
+    assert gate.nightly_run_key(ws, "a", held) != keys[0]
+    assert gate.nightly_run_key(ws, "a", kfold) == keys[1]
