@@ -47,8 +47,8 @@ Protocol
    scored rows. The
    interval reflects which rows were sampled, not the randomness of training.
 7. **Learning curve**: the same folds with each training part cut (stratified, seeded)
-   to a share of its rows; accuracy of ``features`` and ``raw`` against the number of
-   labelled training rows.
+   to a share of its rows; accuracy of ``features`` and of every baseline against the
+   number of labelled training rows.
 
 Each evaluation is appended to ``evaluations/<run-id>`` (never rewritten) with which
 dictionary, coder, pooling and data it measured, the split (``protocol``: ``split``,
@@ -204,7 +204,7 @@ def evaluate_features(
             X = _feature_set(ws, name, dict_id, parts, seed)
             pred, fold_scores[name] = cross_predict(X, y, fold_parts, **fit)
             predictions[name] = pred[scored]
-            if learning_curve and name in ("features", "raw"):
+            if learning_curve:  # every set: the pictures show the best baseline beside raw
                 curve_inputs[name] = curve_points(X, y, fold_parts, learning_curve, seed, fit)
             del X  # one feature set in memory at a time
 

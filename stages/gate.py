@@ -4,6 +4,10 @@ The nightly flow trains a candidate, encodes, pools and evaluates it; then this 
 decides what happens to it. The steps, as plain functions over the workspace (no Prefect:
 the flow keeps the run's state, events, artifacts and logging):
 
+0. :func:`against_references` — whether the candidate's features beat the raw records
+   (and, when asked, the best dictionary baseline: random patches or PCA) on the
+   candidate's own evaluation; if not, the outcome is ``below_raw`` or ``below_baseline``
+   and nothing is promoted.
 1. :func:`outcome_without_comparison` — ``first`` when nothing is promoted yet,
    ``unchanged`` when the candidate *is* the promoted dictionary (same inputs give the same
    id); otherwise the two must be compared.
@@ -38,13 +42,18 @@ from .errors import InputError, problem
 from .kernels.scoring import paired_bootstrap
 from .workspace import Workspace, fingerprint_params
 
-__all__ = ["OUTCOMES", "STATE_NAMES", "GATE_OUTCOMES", "compare_evaluations",
+__all__ = ["OUTCOMES", "STATE_NAMES", "GATE_OUTCOMES", "DICTIONARY_BASELINES", "beats",
+           "best_baseline", "required_baselines", "against_references", "compare_evaluations",
            "gate_decision", "outcome_without_comparison", "compare", "nightly_run_key",
            "recorded_decision", "record_decision"]
 
 #: What a nightly run can end with.
 OUTCOMES = {
     "first": "no dictionary was promoted yet; the candidate is promoted",
+    "below_raw": "the candidate's features did not beat the raw records (higher score, and "
+                 "an interval whose low end stays within the tolerance); not promoted",
+    "below_baseline": "a simpler dictionary (random patches or PCA) did as well as the "
+                      "candidate's features or better; not promoted",
     "promoted": "the candidate is not worse than the promoted one beyond the tolerance, "
                 "and its interval agrees; promoted",
     "unchanged": "the candidate is the promoted dictionary (same inputs); nothing to do",
@@ -59,6 +68,7 @@ OUTCOMES = {
 }
 #: The name of the state a nightly run ends in, per outcome.
 STATE_NAMES = {"first": "Promoted", "promoted": "Promoted", "unchanged": "Unchanged",
+               "below_raw": "BelowRaw", "below_baseline": "BelowBaseline",
                "inconclusive": "Inconclusive", "regression": "Regression", "steady": "Steady",
                "kept": "Kept"}
 
@@ -71,8 +81,110 @@ GATE_OUTCOMES = {
     "regression": "worse than the promoted dictionary by more than the tolerance",
 }
 
+#: The dictionary baselines of the evaluation (the raw records are compared on every run).
+DICTIONARY_BASELINES = ("random_patches", "pca")
+
 #: The outcomes that move the pointer to the candidate.
 _PROMOTING = ("first", "promoted")
+
+
+def beats(comparison: dict[str, float], tolerance: float) -> bool:
+    """Whether the features beat a reference (the raw records, a baseline dictionary).
+
+    With ``d`` the features' score minus the reference's and ``[low, high]`` its paired
+    bootstrap interval, the features beat it when ``d > 0`` (strictly better) and
+    ``low >= -tolerance``: the same interval rule as :func:`gate_decision`, which must
+    say ``promoted``, plus a strictly higher score (a tie does not show the features help).
+
+    Parameters
+    ----------
+    comparison : dict
+        One score's entry of an evaluation's ``versus`` (``difference``, ``low``).
+    tolerance : float
+        Margin, ≥ 0, in score units.
+
+    Returns
+    -------
+    bool
+    """
+    return gate_decision(comparison, tolerance) == "promoted" and comparison["difference"] > 0
+
+
+def best_baseline(evaluation: dict, metric: str) -> str | None:
+    """The dictionary baseline (random patches, PCA) that scored highest on ``metric``.
+
+    Parameters
+    ----------
+    evaluation : dict
+        An evaluation's manifest (``evaluate_features``): its ``versus`` holds, per
+        baseline and score, ``a`` (the features), ``b`` (the baseline) and the interval.
+    metric : str
+        The score compared.
+
+    Returns
+    -------
+    str or None
+        A key of :data:`DICTIONARY_BASELINES`, or ``None`` when the evaluation ran none.
+        On a tie the earlier one in :data:`DICTIONARY_BASELINES` (the simpler) is named.
+    """
+    ran = [b for b in DICTIONARY_BASELINES if b in evaluation.get("versus", {})]
+    if not ran:
+        return None
+    return max(ran, key=lambda b: (evaluation["versus"][b][metric]["b"], -ran.index(b)))
+
+
+def required_baselines(beat_baselines: bool) -> tuple[str, ...]:
+    """The evaluation baselines the gate reads: ``raw`` always, the dictionary baselines
+    too with ``beat_baselines`` (the nightly flow adds them to the candidate's evaluation)."""
+    return ("raw",) + (DICTIONARY_BASELINES if beat_baselines else ())
+
+
+def against_references(evaluation: dict, *, metric: str, tolerance: float,
+                       beat_baselines: bool) -> dict:
+    """Do the candidate's features beat the raw records (and the best baseline)?
+
+    Read from the candidate's own evaluation (its ``versus``: paired bootstraps of the
+    features against each baseline on the same rows and folds); checked on every run,
+    the first one too, before the candidate is compared with the promoted dictionary.
+
+    Parameters
+    ----------
+    evaluation : dict
+        The candidate's evaluation manifest; must hold ``raw`` in its ``versus`` (and
+        ``random_patches`` and ``pca`` with ``beat_baselines``).
+    metric : str
+        The score compared.
+    tolerance : float
+        Margin, ≥ 0 (see :func:`beats`).
+    beat_baselines : bool
+        Also require the features to beat the best dictionary baseline.
+
+    Returns
+    -------
+    dict
+        ``outcome``: ``None`` when the features beat every required reference, else
+        ``"below_raw"`` (checked first) or ``"below_baseline"``; ``raw``: the comparison
+        with the raw records on ``metric``; ``baseline``: the best dictionary baseline's
+        name (or ``None`` when none was evaluated); ``versus_baseline``: its comparison
+        (or ``None``).
+    """
+    check_tolerance(tolerance)
+    versus = evaluation.get("versus", {})
+    missing = [b for b in required_baselines(beat_baselines) if b not in versus]
+    if missing:
+        raise InputError(problem(f"evaluation {evaluation.get('run_id')}",
+                                 f"comparisons with {list(required_baselines(beat_baselines))}",
+                                 f"none with {missing}",
+                                 "Evaluate the candidate with those baselines (the nightly flow "
+                                 "adds them itself)."))
+    best = best_baseline(evaluation, metric)
+    out = {"raw": versus["raw"][metric], "baseline": best,
+           "versus_baseline": versus[best][metric] if best else None, "outcome": None}
+    if not beats(out["raw"], tolerance):
+        out["outcome"] = "below_raw"
+    elif beat_baselines and not beats(out["versus_baseline"], tolerance):
+        out["outcome"] = "below_baseline"
+    return out
 
 
 def compare_evaluations(
@@ -248,7 +360,8 @@ def record_decision(workspace: Workspace | str, records: str, report: dict, *, r
         Name of the records the run worked on.
     report : dict
         The nightly run's report so far; read: ``outcome``, ``candidate_id``,
-        ``previous_id``, ``metric``, ``tolerance``, ``gate``, ``drift``, and the
+        ``previous_id``, ``metric``, ``tolerance``, ``gate``, ``drift``, ``references``
+        (:func:`against_references`, when the candidate was evaluated), and the
         ``candidate`` and ``promoted`` evaluations' manifests (or ``None``).
     run_key : str
         :func:`nightly_run_key` of the run.
@@ -279,6 +392,7 @@ def record_decision(workspace: Workspace | str, records: str, report: dict, *, r
             "promoted_id": report["candidate_id"] if promoting else report["previous_id"],
             "promoted": promoting, "metric": report["metric"],
             "tolerance": report["tolerance"], "gate": report["gate"], "drift": report["drift"],
+            "references": report.get("references"),
             "candidate_run": cand["run_id"] if cand else None,
             "promoted_run": report["promoted"]["run_id"] if report["promoted"] else None,
             "run_key": run_key,

@@ -25,11 +25,12 @@ from matplotlib.figure import Figure  # noqa: E402
 
 from .encode import codes_path  # noqa: E402
 from .errors import InputError, problem  # noqa: E402
+from .gate import best_baseline  # noqa: E402
 from .kernels.prep import PatchGeometry  # noqa: E402
 from .workspace import Workspace, iter_row_chunks  # noqa: E402
 
-__all__ = ["SIZE", "atoms_png", "usage_png", "history_png", "confusion_png", "curve_png",
-           "atom_usage", "render_report", "PICTURES"]
+__all__ = ["SIZE", "atoms_png", "usage_png", "history_png", "history_series", "confusion_png",
+           "curve_png", "curve_series", "atom_usage", "render_report", "history_points", "PICTURES"]
 
 #: Pixel size (width, height) of every picture.
 SIZE = (960, 720)
@@ -173,14 +174,36 @@ def usage_png(usage: np.ndarray, title: str = "atom usage") -> bytes:
     return _png(fig)
 
 
+def history_series(history: list[dict]) -> dict[str, np.ndarray]:
+    """The lines of :func:`history_png`: accuracy per evaluation of the sparse features,
+    the raw records and the best dictionary baseline (NaN where one was not evaluated).
+
+    Parameters
+    ----------
+    history : list of dict
+        As :func:`history_png`.
+
+    Returns
+    -------
+    dict of str to ndarray of shape (len(history),), float64
+        ``features``, ``raw``, ``baseline``.
+    """
+    def line(key: str) -> np.ndarray:
+        return np.array([np.nan if h.get(key) is None else h[key] for h in history], dtype=float)
+
+    return {"features": line("features"), "raw": line("raw"), "baseline": line("baseline")}
+
+
 def history_png(history: list[dict], title: str = "accuracy over retrains") -> bytes:
-    """Accuracy of every evaluation, in order, with the raw baseline and promotions marked.
+    """Accuracy of every evaluation, in order, with the raw records, the best dictionary
+    baseline and promotions marked: a simpler dictionary doing better shows at once.
 
     Parameters
     ----------
     history : list of dict
         Oldest first; each has ``label`` (str), ``features`` (float), and optionally
-        ``raw`` (float or None) and ``promoted`` (bool: this dictionary was promoted).
+        ``raw`` and ``baseline`` (float or None: the best of the random-patches and PCA
+        dictionaries) and ``promoted`` (bool: this dictionary was promoted).
     title : str
 
     Returns
@@ -191,11 +214,14 @@ def history_png(history: list[dict], title: str = "accuracy over retrains") -> b
     fig = _figure()
     ax = fig.add_subplot()
     x = np.arange(len(history))
-    feats = np.array([h["features"] for h in history], dtype=float)
-    raw = np.array([np.nan if h.get("raw") is None else h["raw"] for h in history], dtype=float)
+    lines = history_series(history)
+    feats = lines["features"]
     ax.plot(x, feats, "o-", color="tab:blue", label="sparse features")
-    if np.isfinite(raw).any():
-        ax.plot(x, raw, "s--", color="0.5", label="raw records")
+    if np.isfinite(lines["raw"]).any():
+        ax.plot(x, lines["raw"], "s--", color="0.5", label="raw records")
+    if np.isfinite(lines["baseline"]).any():
+        ax.plot(x, lines["baseline"], "^:", color="tab:orange",
+                label="best baseline dictionary (random patches or PCA)")
     promoted = np.array([bool(h.get("promoted")) for h in history])
     if promoted.any():
         ax.plot(x[promoted], feats[promoted], "*", ms=14, color="tab:green", label="promoted")
@@ -239,15 +265,40 @@ def confusion_png(conf: np.ndarray, classes: list[str], title: str = "confusion 
     return _png(fig)
 
 
-def curve_png(curve: dict, title: str = "learning curve") -> bytes:
+def curve_series(curve: dict, baseline: str | None = None) -> dict[str, list[float]]:
+    """The lines of :func:`curve_png`: accuracy per training size of the sparse features,
+    the raw records and the named baseline dictionary, as far as the curve holds them.
+
+    Parameters
+    ----------
+    curve : dict
+        An evaluation's ``learning_curve``.
+    baseline : str, optional
+        The baseline dictionary to draw beside raw (:func:`.gate.best_baseline`).
+
+    Returns
+    -------
+    dict of str to list of float
+        By label: ``features``, ``raw``, ``best baseline: <name>``.
+    """
+    names = [("features", "features"), ("raw", "raw")]
+    if baseline is not None:
+        names.append((baseline, f"best baseline: {baseline}"))
+    return {label: list(curve[name]) for name, label in names if name in curve}
+
+
+def curve_png(curve: dict, title: str = "learning curve", baseline: str | None = None) -> bytes:
     """Accuracy against the number of labelled training rows.
 
     Parameters
     ----------
     curve : dict
         ``train_rows`` (list of float) and one list of accuracies per feature set
-        (``features``, optionally ``raw``), as in an evaluation's ``learning_curve``.
+        (``features``, optionally ``raw`` and the baselines), as in an evaluation's
+        ``learning_curve``.
     title : str
+    baseline : str, optional
+        A baseline dictionary in ``curve`` to draw beside raw (the best one).
 
     Returns
     -------
@@ -256,9 +307,8 @@ def curve_png(curve: dict, title: str = "learning curve") -> bytes:
     """
     fig = _figure()
     ax = fig.add_subplot()
-    for name, style in (("features", "o-"), ("raw", "s--")):
-        if name in curve:
-            ax.plot(curve["train_rows"], curve[name], style, label=name)
+    for (label, values), style in zip(curve_series(curve, baseline).items(), ("o-", "s--", "^:")):
+        ax.plot(curve["train_rows"], values, style, label=label)
     ax.set_xscale("log")
     ax.set_xlabel("labelled training rows (per fold)")
     ax.set_ylabel("accuracy")
@@ -330,7 +380,8 @@ def render_report(workspace: Workspace | str, run_id: str,
                                        title=f"accuracy over retrains, {ev['records']}"),
         "confusion": lambda: confusion_png(ws.evaluation_arrays(run_id)["confusion_features"], names,
                                            title=f"sparse features, {ev['dict_id']}"),
-        "learning_curve": lambda: curve_png(ev["learning_curve"]),
+        "learning_curve": lambda: curve_png(ev["learning_curve"],
+                                            baseline=best_baseline(ev, "accuracy")),
     }
     for name in missing:
         done[name] = ws.save_picture(run_id, name, makers[name](),
@@ -340,10 +391,17 @@ def render_report(workspace: Workspace | str, run_id: str,
 
 
 def history_points(ws: Workspace, records: str) -> list[dict]:
-    """The accuracy history of ``records`` for :func:`history_png` (oldest first)."""
+    """The accuracy history of ``records`` for :func:`history_png` (oldest first): the
+    features, the raw records and the best dictionary baseline of each evaluation."""
     promoted = {d["candidate_run"] for d in ws.decisions() if d.get("promoted")}
+
+    def best(e: dict) -> float | None:
+        name = best_baseline(e, "accuracy")
+        return None if name is None else e["metrics"][name]["accuracy"]
+
     return [{"label": f"{e['created'][5:16]} {e['dict_id'][:8]}",
              "features": e["metrics"]["features"]["accuracy"],
              "raw": e["metrics"].get("raw", {}).get("accuracy"),
+             "baseline": best(e), "baseline_name": best_baseline(e, "accuracy"),
              "promoted": e["run_id"] in promoted}
             for e in ws.evaluations() if e["records"] == records and e.get("tag") != "promoted"]

@@ -290,3 +290,100 @@ def test_a_promotion_whose_evaluation_measured_another_dictionary_is_refused(can
     with pytest.raises(FingerprintMismatch, match="an evaluation of d-other"):
         gate.record_decision(ws, "vib", _report("first", "d-other", None, run), run_key="k-1", recorded=None)
     assert ws.decisions() == [] and ws.promoted is None
+
+
+# ---------------------------------------------------------------------------- against raw and baselines
+def _versus(y: np.ndarray, features: np.ndarray, **references: np.ndarray) -> dict:
+    """A small in-memory evaluation manifest: the features' predictions compared with each
+    reference's by the same paired bootstrap the evaluate stage stores in ``versus``."""
+    from atomline.stages.kernels.scoring import paired_bootstrap
+
+    return {"run_id": "ev-test", "versus": {
+        name: paired_bootstrap(y, features, pred, 2, n_boot=500, seed=0)
+        for name, pred in references.items()}}
+
+
+Y64 = np.arange(N_ROWS) % 2
+
+
+def test_features_worse_than_raw_are_refused_on_the_first_run():
+    # Features wrong on 12 of 64 rows, the raw records on 2: 0.8125 against 0.96875.
+    evaluation = _versus(Y64, _wrong_on(Y64, range(12)), raw=_wrong_on(Y64, range(2)))
+    verdict = gate.against_references(evaluation, metric="accuracy", tolerance=0.01,
+                                      beat_baselines=False)
+    assert verdict["outcome"] == "below_raw"
+    # The stored comparison is the one read: 0.8125 - 0.96875 computed by hand.
+    assert verdict["raw"]["difference"] == 0.8125 - 0.96875 and verdict["raw"]["high"] < 0
+    assert gate.STATE_NAMES["below_raw"] == "BelowRaw" and "raw records" in gate.OUTCOMES["below_raw"]
+
+
+def test_features_better_than_raw_pass_and_baselines_count_only_by_option():
+    # Features wrong on 0 rows, raw on 16, random patches on 8, PCA on 0 (a tie with the features).
+    evaluation = _versus(Y64, Y64.copy(), raw=_wrong_on(Y64, range(16)),
+                         random_patches=_wrong_on(Y64, range(8)), pca=Y64.copy())
+    plain = gate.against_references(evaluation, metric="accuracy", tolerance=0.01, beat_baselines=False)
+    assert plain["outcome"] is None and plain["raw"]["difference"] == 0.25
+    strict = gate.against_references(evaluation, metric="accuracy", tolerance=0.01, beat_baselines=True)
+    assert strict["outcome"] == "below_baseline"
+    assert strict["baseline"] == "pca" and strict["versus_baseline"]["difference"] == 0.0
+
+
+def test_features_that_beat_the_best_baseline_pass_with_the_option():
+    evaluation = _versus(Y64, _wrong_on(Y64, range(1)), raw=_wrong_on(Y64, range(16)),
+                         random_patches=_wrong_on(Y64, range(20)), pca=_wrong_on(Y64, range(10)))
+    verdict = gate.against_references(evaluation, metric="accuracy", tolerance=0.01, beat_baselines=True)
+    assert verdict["outcome"] is None and verdict["baseline"] == "pca"
+    assert verdict["versus_baseline"]["difference"] == (63 - 54) / 64
+
+
+@pytest.mark.parametrize("d, low, beats", [(0.0, 0.0, False), (0.02, -0.01, True),
+                                           (0.02, -0.0101, False), (-0.005, -0.009, False)])
+def test_beating_needs_a_higher_score_and_the_interval_within_the_tolerance(d, low, beats):
+    assert gate.beats({"difference": d, "low": low}, 0.01) is beats
+
+
+def test_beating_at_the_boundaries():
+    smallest_gain = np.nextafter(0.0, 1.0)
+    # The lowest interval end allowed is -tolerance itself; one float below fails.
+    assert gate.beats({"difference": smallest_gain, "low": -0.01}, 0.01)
+    assert not gate.beats({"difference": smallest_gain, "low": np.nextafter(-0.01, -1.0)}, 0.01)
+    # A tie never beats, whatever the interval.
+    assert not gate.beats({"difference": 0.0, "low": 0.0}, 0.0)
+
+
+def test_best_baseline_is_the_highest_score_and_the_simpler_on_a_tie():
+    tie = _versus(Y64, Y64.copy(), random_patches=_wrong_on(Y64, range(4)), pca=_wrong_on(Y64, range(4)))
+    assert gate.best_baseline(tie, "accuracy") == "random_patches"
+    pca = _versus(Y64, Y64.copy(), random_patches=_wrong_on(Y64, range(5)), pca=_wrong_on(Y64, range(4)))
+    assert gate.best_baseline(pca, "accuracy") == "pca"
+    assert gate.best_baseline(_versus(Y64, Y64.copy(), raw=Y64.copy()), "accuracy") is None
+
+
+def test_the_gate_refuses_an_evaluation_without_the_references_it_needs():
+    only_raw = _versus(Y64, Y64.copy(), raw=_wrong_on(Y64, range(3)))
+    with pytest.raises(InputError, match="pca"):
+        gate.against_references(only_raw, metric="accuracy", tolerance=0.01, beat_baselines=True)
+    with pytest.raises(InputError, match="raw"):
+        gate.against_references({"run_id": "ev", "versus": {}}, metric="accuracy", tolerance=0.01,
+                                beat_baselines=False)
+    assert gate.required_baselines(False) == ("raw",)
+    assert gate.required_baselines(True) == ("raw", "random_patches", "pca")
+
+
+def test_the_gate_reads_the_named_metric():
+    # Three classes, unbalanced: the features are wrong only on the rare class, so their accuracy
+    # beats the raw records' while balanced accuracy does not (scikit-learn as the reference).
+    from sklearn.metrics import balanced_accuracy_score
+
+    from atomline.stages.kernels.scoring import paired_bootstrap
+
+    y = np.array([0] * 30 + [1] * 30 + [2] * 4)
+    features = y.copy(); features[60:] = 0             # rare class always missed
+    raw = y.copy(); raw[:12] = 1                       # twelve common rows missed
+    evaluation = {"run_id": "ev", "versus": {"raw": paired_bootstrap(y, features, raw, 3, n_boot=500)}}
+    assert accuracy_score(y, features) > accuracy_score(y, raw)
+    assert balanced_accuracy_score(y, features) < balanced_accuracy_score(y, raw)
+    assert gate.against_references(evaluation, metric="accuracy", tolerance=0.01,
+                                   beat_baselines=False)["outcome"] is None
+    assert gate.against_references(evaluation, metric="balanced_accuracy", tolerance=0.01,
+                                   beat_baselines=False)["outcome"] == "below_raw"

@@ -129,3 +129,27 @@ def test_drift_rule():
     assert not compare_drift({"error": 0.23, "nonzeros": 4.2}, ref, 0.2)["drifted"]
     assert compare_drift({"error": 0.25, "nonzeros": 4.0}, ref, 0.2)["drifted"]
     assert compare_drift({"error": 0.2, "nonzeros": 3.0}, ref, 0.2)["drifted"]
+
+
+def test_history_and_curve_show_the_best_baseline_beside_raw(digits_workspace):
+    # scikit-learn's digits (the conftest fixture): every baseline evaluated, a learning curve.
+    ws, dict_id = digits_workspace
+    ev = evaluate.evaluate_features(ws, "digits", dict_id, tag="baselines-shown", options=EvaluateOptions(
+        max_rows=400, folds=3, learning_curve=(0.3,), n_boot=100))
+    rp, pca = ev["random_patches"]["accuracy"], ev["pca"]["accuracy"]
+    best = "pca" if pca > rp else "random_patches"
+    point = [p for p in pictures.history_points(ws, "digits") if p["label"].endswith(dict_id[:8])][-1]
+    assert point["baseline"] == max(rp, pca) and point["baseline_name"] == best
+    assert point["raw"] == ev["raw"]["accuracy"]
+    lines = pictures.history_series([point, {"label": "no baselines", "features": 0.5}])
+    assert lines["baseline"][0] == max(rp, pca) and np.isnan(lines["baseline"][1])
+    # The learning curve holds every set, and the picture draws the best baseline beside raw;
+    # its last point is the full training share, the fold mean of the main result.
+    curve = ev["learning_curve"]
+    series = pictures.curve_series(curve, best)
+    assert list(series) == ["features", "raw", f"best baseline: {best}"]
+    assert series[f"best baseline: {best}"][-1] == pytest.approx(
+        np.mean(ev[best]["fold_accuracy"]))
+    _assert_picture(pictures.curve_png(curve, baseline=best))
+    paths = pictures.render_report(ws, ev["run_id"])
+    assert [p.rsplit("/", 1)[1] for p in paths][-1] == "learning_curve"
