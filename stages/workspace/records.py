@@ -56,7 +56,8 @@ class RecordsMixin:
         _check_name(name, "records name")
         arr = _array_like(source)
         check_records(arr, f"records {name!r}")
-        kind = _record_kind(kind, arr.shape[1:], name)
+        if kind is not None:
+            _record_kind(kind, arr.shape[1:], name)  # refused before anything is written
         path = f"data/{name}"
         self._refuse_existing(path, overwrite)
         rows = _default_chunk_rows(arr.shape, arr.dtype) if chunk_rows is None else chunk_rows
@@ -77,7 +78,9 @@ class RecordsMixin:
                                    config={"write_empty_chunks": True})
         for start in range(0, arr.shape[0], rows):
             z[start : start + rows] = np.asarray(arr[start : start + rows])
-        z.attrs.update({"all_chunks_stored": True, "kind": kind, **_fingerprint_attrs(digest, [])})
+        z.attrs.update({"all_chunks_stored": True, **_fingerprint_attrs(digest, [])})
+        if kind is not None:  # only a given kind is stored: others follow the rank
+            z.attrs["kind"] = kind
         return self.describe_records(name)
 
     def link_records(self, name: str, url: str, path: str = "", *, overwrite: bool = False,
