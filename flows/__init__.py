@@ -5,13 +5,15 @@ Example (runs with no Prefect server configured; Prefect starts a temporary one)
     import numpy as np
     from atomline.flows import nightly_flow
     from atomline.flows.demo import vibration_records
+    from atomline.stages.options import PoolOptions, TrainOptions
     from atomline.stages.workspace import Workspace
 
     X, y = vibration_records(2000, seed=0)
     ws = Workspace.open("demo.zarr", create=True)
     ws.add_records("vibration", X, chunk_rows=250)
     ws.add_labels("vibration", y)
-    report = nightly_flow("demo.zarr", "vibration", patch_size=64, stride=32, regions=2)
+    report = nightly_flow("demo.zarr", "vibration", train=TrainOptions(patch_size=64, stride=32),
+                          pool=PoolOptions(regions=2))
     print(report["outcome"], report["candidate"]["features"], report["candidate"]["raw"])
 """
 

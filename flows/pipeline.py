@@ -2,14 +2,21 @@
 
 ``train_flow``, ``encode_flow``, ``pool_flow`` and ``evaluate_flow`` run one stage each;
 ``nightly_flow`` chains them with a promotion gate. All take the workspace as a URL and
-arrays by name: no array ever passes through Prefect. Example (Prefect with no server
+arrays by name: no array ever passes through Prefect. Their options are the stages' option
+objects (``stages/options.py``), one parameter per group (``train``, ``encode``, ``pool``,
+``evaluate``, ``report``, ``gate``, ``drift``, ``runner``); Prefect validates them and shows
+their fields. ``runner`` gives the flows its ``workers`` and ``batches_per_worker`` (how the
+chunks are cut into tasks); the task runner itself is the flow's (``with_options``,
+``runners.runner_for``). Example (Prefect with no server
 configured starts a temporary local one)::
 
     from atomline.flows import nightly_flow
     from atomline.flows.runners import task_runner
+    from atomline.stages.options import RunnerOptions, TrainOptions
 
     report = nightly_flow.with_options(task_runner=task_runner("threads", 2))(
-        "archive.zarr", "vibration", n_atoms=128, patch_size=64, stride=32, workers=2)
+        "archive.zarr", "vibration", train=TrainOptions(n_atoms=128, patch_size=64, stride=32),
+        runner=RunnerOptions(workers=2))
     print(report["outcome"], report["candidate"]["features"]["accuracy"])
 """
 
@@ -17,6 +24,7 @@ from __future__ import annotations
 
 import dataclasses
 import time
+from typing import Any
 
 from prefect import flow, get_run_logger, task
 from prefect.artifacts import create_markdown_artifact
@@ -27,15 +35,14 @@ from prefect.states import Completed, Failed, State
 
 from atomline.stages.checks import check_retrain, promoted_or_named
 from atomline.stages.drift import detect_drift
-from atomline.stages.errors import InputError, problem
 from atomline.stages.encode import codes_path, encode_task, prepare_encode
-from atomline.stages.evaluate import BASELINES, DEFAULT_CURVE, evaluate_task
-from atomline.stages.gate import (OUTCOMES, STATE_NAMES, compare, gate_decision, nightly_run_key,
+from atomline.stages.evaluate import evaluate_task
+from atomline.stages.gate import (OUTCOMES, STATE_NAMES, compare, nightly_run_key,
                                   outcome_without_comparison, record_decision, recorded_decision)
 from atomline.stages.report import render_report
-from atomline.stages.kernels.scoring import SCORES
-from atomline.stages.options import (RETRAIN, DriftOptions, EncodeOptions, EvaluateOptions, PoolOptions,
-                                     TrainOptions)
+from atomline.stages.options import (RETRAIN, DriftOptions, EncodeOptions, EvaluateOptions,
+                                     GateOptions, PoolOptions, ReportOptions, RunnerOptions,
+                                     TrainOptions, deciding)
 from atomline.stages.pool import features_path, pool_task, prepare_pool
 from atomline.stages.train import train_task
 from atomline.stages.workspace import Workspace
@@ -48,6 +55,9 @@ render_task = task(render_report, name="render-pictures", cache_policy=NO_CACHE)
 
 __all__ = ["train_flow", "encode_flow", "pool_flow", "evaluate_flow", "nightly_flow", "OUTCOMES",
            "STATE_NAMES", "RETRAIN"]
+
+#: The flows' default runner options: the two workers of their decorators' task runners.
+FLOW_RUNNER = RunnerOptions(workers=2)
 
 
 def _summarise(results: list[dict], prepared: dict, key: str, wall: float) -> dict:
@@ -67,29 +77,24 @@ def _summarise(results: list[dict], prepared: dict, key: str, wall: float) -> di
 
 
 @flow(name="atomline-train", task_runner=task_runner("threads", 1))
-def train_flow(workspace: str, records: str, n_atoms: int = 128, patch_size: int | list[int] | None = None,
-               stride: int | list[int] | None = None, method: str = "online", coder: str = "omp",
-               coder_options: dict | None = None, learner_options: dict | None = None,
-               preprocessing: dict | None = None, sample_patches: int = 20_000, seed: int = 0,
+def train_flow(workspace: str, records: str, train: TrainOptions = TrainOptions(),
                break_lease: bool = False) -> dict:
     """Learn a dictionary from a sample of ``data/<records>`` (see ``train_dictionary``)."""
-    options = TrainOptions(n_atoms=n_atoms, patch_size=patch_size, stride=stride, method=method,
-                           coder=coder, coder_options=coder_options, learner_options=learner_options,
-                           preprocessing=preprocessing, sample_patches=sample_patches, seed=seed)
-    manifest = train_task(workspace, records, options, run=_run_name(), break_lease=break_lease)
-    get_run_logger().info("dictionary %s (%s, reused=%s)", manifest["dict_id"], method, manifest["reused"])
+    manifest = train_task(workspace, records, train, run=_run_name(), break_lease=break_lease)
+    get_run_logger().info("dictionary %s (%s, reused=%s)", manifest["dict_id"], train.method,
+                          manifest["reused"])
     return manifest
 
 
 @flow(name="atomline-encode", task_runner=task_runner("threads", 2))
-def encode_flow(workspace: str, records: str, dict_id: str | None = None, coder: str | None = None,
-                coder_options: dict | None = None, workers: int = 2, batches_per_worker: int = 4,
-                overwrite: bool = False, on_bad_chunk: str = "stop", break_lease: bool = False) -> dict:
+def encode_flow(workspace: str, records: str, dict_id: str | None = None,
+                encode: EncodeOptions = EncodeOptions(), runner: RunnerOptions = FLOW_RUNNER,
+                overwrite: bool = False, break_lease: bool = False) -> dict:
     """Encode every pending chunk of ``data/<records>`` in parallel batches.
 
     ``dict_id`` defaults to the promoted dictionary. Finished chunks are skipped, so
     rerunning after a crash resumes. The run holds the write lease of the codes output
-    throughout (a second run on the same output is refused); ``on_bad_chunk`` is
+    throughout (a second run on the same output is refused); ``encode.on_bad_chunk`` is
     ``"stop"`` or ``"skip"`` (see ``encode_chunks``).
     """
     logger = get_run_logger()
@@ -97,15 +102,14 @@ def encode_flow(workspace: str, records: str, dict_id: str | None = None, coder:
     dict_id = dict_id or _promoted(workspace)
     ws = Workspace.open(workspace)
     with ws.lease(codes_path(dict_id, records), run=_run_name(), break_existing=break_lease) as held:
-        options = EncodeOptions(coder=coder, coder_options=coder_options, on_bad_chunk=on_bad_chunk)
-        prepared = prepare_encode(ws, records, dict_id, options, overwrite=overwrite)
-        batches = plan_batches(prepared["pending"], workers, batches_per_worker)
+        prepared = prepare_encode(ws, records, dict_id, encode, overwrite=overwrite)
+        batches = plan_batches(prepared["pending"], runner.workers, runner.batches_per_worker)
         logger.info("encode %s with %s: %d of %d chunks pending, %d batches",
                     records, dict_id, len(prepared["pending"]), prepared["n_chunks"], len(batches))
         start = time.perf_counter()
         progress = ChunkProgress(records, len(prepared["pending"]), "encode")
-        futures = [encode_task.submit(workspace, records, dict_id, b, options,
-                                      blas_threads=blas_threads(workers), lease=held.info.token)
+        futures = [encode_task.submit(workspace, records, dict_id, b, encode,
+                                      blas_threads=blas_threads(runner.workers), lease=held.info.token)
                    for b in batches]
         results = []
         for future in as_completed(futures):
@@ -122,22 +126,20 @@ def encode_flow(workspace: str, records: str, dict_id: str | None = None, coder:
 
 
 @flow(name="atomline-pool", task_runner=task_runner("threads", 2))
-def pool_flow(workspace: str, records: str, dict_id: str | None = None, reduce: str = "max",
-              split_sign: bool = True, regions: int | list[int] = 4, workers: int = 2,
-              batches_per_worker: int = 4, overwrite: bool = False, on_bad_chunk: str = "stop",
-              break_lease: bool = False) -> dict:
+def pool_flow(workspace: str, records: str, dict_id: str | None = None,
+              pool: PoolOptions = PoolOptions(), runner: RunnerOptions = FLOW_RUNNER,
+              overwrite: bool = False, break_lease: bool = False) -> dict:
     """Pool the codes of every pending chunk into per-record features (under a write lease);
-    ``on_bad_chunk`` as for ``encode_flow``, for codes chunks that cannot be decoded."""
+    ``pool.on_bad_chunk`` as for ``encode_flow``, for codes chunks that cannot be decoded."""
     check_reachable(workspace)
     dict_id = dict_id or _promoted(workspace)
     ws = Workspace.open(workspace)
     with ws.lease(features_path(dict_id, records), run=_run_name(), break_existing=break_lease) as held:
-        options = PoolOptions(reduce=reduce, split_sign=split_sign, regions=regions,
-                              on_bad_chunk=on_bad_chunk)
-        prepared = prepare_pool(ws, records, dict_id, options, overwrite=overwrite)
+        prepared = prepare_pool(ws, records, dict_id, pool, overwrite=overwrite)
         start = time.perf_counter()
-        futures = [pool_task.submit(workspace, records, dict_id, b, options, lease=held.info.token)
-                   for b in plan_batches(prepared["pending"], workers, batches_per_worker)]
+        futures = [pool_task.submit(workspace, records, dict_id, b, pool, lease=held.info.token)
+                   for b in plan_batches(prepared["pending"], runner.workers,
+                                         runner.batches_per_worker)]
         results = [f.result() for f in futures]
         skipped = _record_skips(ws, features_path(dict_id, records), records)
     summary = _summarise(results, prepared, "pooled", time.perf_counter() - start)
@@ -149,37 +151,23 @@ def pool_flow(workspace: str, records: str, dict_id: str | None = None, reduce: 
 
 @flow(name="atomline-evaluate", task_runner=task_runner("threads", 1))
 def evaluate_flow(workspace: str, records: str, dict_id: str | None = None, labels: str | None = None,
-                  folds: int = 5, classifier: str = "logistic", C: float = 1.0, max_rows: int = 20_000,
-                  seed: int = 0, baselines: list[str] | None = None,
-                  learning_curve: list[float] | None = None, n_boot: int = 2000, tag: str = "",
-                  pictures: bool = True, class_names: list[str] | None = None,
-                  on_bad_chunk: str = "stop") -> dict:
+                  evaluate: EvaluateOptions = EvaluateOptions(), report: ReportOptions = ReportOptions(),
+                  tag: str = "") -> dict:
     """Score a linear classifier on the pooled features and on the baselines.
 
-    ``baselines`` and ``learning_curve`` default to the evaluate stage's
-    (``BASELINES``, ``DEFAULT_CURVE``); pass ``[]`` for none. Creates the markdown and
-    table artifacts and, with ``pictures``, stores the pictures in the workspace.
-    ``on_bad_chunk="skip"`` leaves out the rows of features chunks that do not decode.
+    ``evaluate.baselines`` and ``evaluate.learning_curve`` default to the evaluate stage's
+    (``BASELINES``, ``DEFAULT_CURVE``); pass ``()`` for none. Creates the markdown and
+    table artifacts and, with ``report.pictures``, stores the pictures in the workspace.
+    ``evaluate.on_bad_chunk="skip"`` leaves out the rows of features chunks that do not decode.
     """
     dict_id = dict_id or _promoted(workspace)
-    options = _evaluation_options(folds, classifier, C, max_rows, seed, baselines, learning_curve,
-                                  n_boot, on_bad_chunk)
-    manifest = evaluate_task(workspace, records, dict_id, options, labels=labels, tag=tag)
-    paths = render_task(workspace, manifest["run_id"], class_names) if pictures else []
+    manifest = evaluate_task(workspace, records, dict_id, evaluate, labels=labels, tag=tag)
+    paths = render_task(workspace, manifest["run_id"], report.class_names) if report.pictures else []
     manifest["pictures"] = paths
     publish_evaluation(Workspace.open(workspace), manifest, records,
                        title=f"atomline evaluation of {records}", picture_paths=paths)
     _log_scores(get_run_logger(), manifest)
     return manifest
-
-
-def _evaluation_options(folds, classifier, C, max_rows, seed, baselines, learning_curve, n_boot,
-                        on_bad_chunk) -> EvaluateOptions:
-    return EvaluateOptions(folds=folds, classifier=classifier, C=C, max_rows=max_rows, seed=seed,
-                           baselines=tuple(BASELINES if baselines is None else baselines),
-                           learning_curve=tuple(DEFAULT_CURVE if learning_curve is None
-                                                else learning_curve),
-                           n_boot=n_boot, on_bad_chunk=on_bad_chunk)
 
 
 def _log_scores(logger, manifest: dict) -> None:
@@ -192,44 +180,42 @@ def _log_scores(logger, manifest: dict) -> None:
 
 
 @flow(name="atomline-nightly", task_runner=task_runner("threads", 2))
-def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atoms: int = 128,
-                 patch_size: int | list[int] | None = None, stride: int | list[int] | None = None,
-                 method: str = "online", coder: str = "omp", coder_options: dict | None = None,
-                 learner_options: dict | None = None, preprocessing: dict | None = None,
-                 sample_patches: int = 20_000, reduce: str = "max", split_sign: bool = True,
-                 regions: int | list[int] = 4, metric: str = "accuracy", tolerance: float = 0.01,
-                 folds: int = 5, classifier: str = "logistic", C: float = 1.0,
-                 max_rows: int = 20_000, seed: int = 0, baselines: list[str] | None = None,
-                 learning_curve: list[float] | None = None, n_boot: int = 2000,
-                 pictures: bool = True, class_names: list[str] | None = None,
-                 retrain_on_drift: bool = False, drift_since: int | None = None,
-                 drift_threshold: float = 0.2, fail_on_regression: bool = False,
-                 workers: int = 2, batches_per_worker: int = 4, on_bad_chunk: str = "stop",
-                 break_lease: bool = False, retrain: str = "always") -> State:
+def nightly_flow(workspace: str, records: str, labels: str | None = None,
+                 train: TrainOptions = TrainOptions(), encode: EncodeOptions = EncodeOptions(),
+                 pool: PoolOptions = PoolOptions(), evaluate: EvaluateOptions = EvaluateOptions(),
+                 report: ReportOptions = ReportOptions(), gate: GateOptions = GateOptions(),
+                 drift: DriftOptions = DriftOptions(), runner: RunnerOptions = FLOW_RUNNER,
+                 break_lease: bool = False) -> State:
     """Train a candidate dictionary, encode, pool, evaluate, and promote it if it holds up.
 
     **Gate.** The candidate and the promoted dictionary are evaluated on the same rows
-    and folds (same seed and ``max_rows``); ``d`` is the candidate's ``metric``
+    and folds (same ``evaluate.seed`` and ``max_rows``); ``d`` is the candidate's ``metric``
     (``accuracy``, ``balanced_accuracy`` or ``macro_f1``) minus the promoted one's and
-    ``[low, high]`` its paired-bootstrap 95 % interval. Outcome (``OUTCOMES``):
+    ``[low, high]`` its paired-bootstrap 95 % interval (``gate``: ``GateOptions``). Outcome (``OUTCOMES``):
     ``regression`` when ``d < -tolerance``; ``promoted`` when ``d >= -tolerance`` and
     ``low >= -tolerance``; ``inconclusive`` otherwise (see ``stages.gate``).
     The pointer moves only after the candidate's features and evaluation are complete.
     Every decision is appended to the workspace (``Workspace.decisions``).
 
-    **Reruns.** A decision is stored with the run's key (``gate.nightly_run_key``: the
-    records' and labels' content and the options that can change the outcome). A run
+    **Reruns.** A decision is stored with the run's key (``gate.nightly_run_key`` over
+    :func:`nightly_key_options`: the records' and labels' content and the deciding fields of
+    the option objects). A run
     whose key was decided already — a rerun after a kill at any point, or a run on
     unchanged inputs — reports that decision (``already_decided`` holds its id) instead
     of evaluating and deciding again; what the earlier run left unfinished (chunks, an
     evaluation, pictures, the pointer move) is finished, and nothing is added twice.
 
-    **Drift.** With ``retrain_on_drift`` and a promoted dictionary, rows ``drift_since:``
+    **Drift.** With ``drift.retrain_on_drift`` and a promoted dictionary, rows ``drift_since:``
     are compared with rows ``:drift_since`` (``stages.drift``); below ``drift_threshold``
     nothing is retrained (outcome ``steady``) and the promoted dictionary's features are
     brought up to date.
 
-    **Retrain policy.** ``retrain`` (a key of :data:`RETRAIN`) decides whether a candidate
+    **Options.** ``encode``, ``pool`` and ``evaluate`` apply to the candidate and to the
+    promoted dictionary alike (the promoted one is encoded with its own coder unless
+    ``encode.coder`` names one); ``train.seed`` seeds the training sample and the drift
+    check, ``evaluate.seed`` the evaluation and the gate's bootstrap.
+
+    **Retrain policy.** ``gate.retrain`` (a key of :data:`RETRAIN`) decides whether a candidate
     is trained at all. A candidate's id follows the archive's fingerprint, so with
     ``"always"`` rows appended since the last run (``Workspace.append_records``) give a new
     candidate, encoded whole into its own codes group while the promoted features stay
@@ -240,7 +226,7 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
     **What the run shows.** The flow run ends in a state named after the outcome
     (``Promoted``, ``Regression``, …) with the outcome's meaning as its message: a
     ``Completed`` state, or a ``Failed`` one for a regression when
-    ``fail_on_regression`` (so automations and notifications on failed runs fire). A
+    ``gate.fail_on_regression`` (so automations and notifications on failed runs fire). A
     regression also emits the Prefect event ``atomline.nightly.regression``. Markdown
     and table artifacts summarise the evaluation; pictures are stored in the workspace.
 
@@ -251,30 +237,15 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
         of :data:`OUTCOMES`), ``candidate`` and ``promoted`` evaluations, ``gate`` (the
         comparison), the train/encode/pool manifests, ``drift``, ``pictures``, the
         promoted id after the run, ``decision_id``, and ``already_decided`` (the id of
-        the recorded decision reported instead of a new one, when there was one). With ``fail_on_regression`` a regression raises
+        the recorded decision reported instead of a new one, when there was one). With ``gate.fail_on_regression`` a regression raises
         instead; call with ``return_state=True`` to read the report from the state.
     """
     logger = get_run_logger()
-    if metric not in SCORES:
-        raise InputError(problem("metric", f"one of {SCORES}", repr(metric), "Pick a listed score."))
-    gate_decision({"difference": 0.0, "low": 0.0}, tolerance)  # refuses a negative tolerance early
-    evaluation = _evaluation_options(folds, classifier, C, max_rows, seed, baselines, learning_curve,
-                                     n_boot, on_bad_chunk)
-    if retrain not in RETRAIN:
-        raise InputError(problem("retrain", f"one of {sorted(RETRAIN)}", repr(retrain),
-                                 "Pick a listed policy."))
     check_reachable(workspace)
     ws = Workspace.open(workspace)
-    run_key = nightly_run_key(ws, records, dict(
-        labels=labels, n_atoms=n_atoms, patch_size=patch_size, stride=stride, method=method, coder=coder,
-        coder_options=coder_options, learner_options=learner_options, preprocessing=preprocessing,
-        sample_patches=sample_patches, reduce=reduce, split_sign=split_sign, regions=regions,
-        metric=metric, tolerance=tolerance,
-        evaluation=dict(labels=labels, **{k: v for k, v in dataclasses.asdict(evaluation).items()
-                                          if k != "on_bad_chunk"}),
-        retrain_on_drift=retrain_on_drift,
-        drift_since=drift_since, drift_threshold=drift_threshold, on_bad_chunk=on_bad_chunk,
-        retrain=retrain))
+    run_key = nightly_run_key(ws, records, nightly_key_options(
+        labels, train=train, encode=encode, pool=pool, evaluate=evaluate, report=report, gate=gate,
+        drift=drift, runner=runner))
     recorded = recorded_decision(ws, run_key)
     # A run with these inputs was decided already (and maybe killed before it ended): replay
     # it against the dictionary that was promoted when it started. Every step below finds
@@ -283,58 +254,61 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None, n_atom
     if recorded:
         logger.info("these inputs were decided by %s (%s); reporting that decision",
                     recorded["decision_id"], recorded["outcome"])
-    check_retrain(retrain, previous, workspace)
+    check_retrain(gate.retrain, previous, workspace)
 
     def features_for(dict_id: str) -> tuple[dict, dict]:
-        enc = encode_flow.fn(workspace, records, dict_id=dict_id, workers=workers,
-                             batches_per_worker=batches_per_worker, on_bad_chunk=on_bad_chunk,
+        enc = encode_flow.fn(workspace, records, dict_id=dict_id, encode=encode, runner=runner,
                              break_lease=break_lease)
-        pooled = pool_flow.fn(workspace, records, dict_id=dict_id, reduce=reduce, split_sign=split_sign,
-                              regions=regions, workers=workers, batches_per_worker=batches_per_worker,
-                              on_bad_chunk=on_bad_chunk, break_lease=break_lease)
+        pooled = pool_flow.fn(workspace, records, dict_id=dict_id, pool=pool, runner=runner,
+                              break_lease=break_lease)
         return enc, pooled
 
-    report = {"previous_id": previous, "metric": metric, "tolerance": tolerance, "drift": None,
-              "candidate": None, "promoted": None, "gate": None, "pictures": [], "retrain": retrain}
-    if retrain != "always" and previous is not None:
-        report["encode"], report["pool"] = features_for(previous)
-        report.update(candidate_id=None, outcome="kept")
-        return _finish(workspace, records, report, fail_on_regression, run_key, recorded)
-    if retrain_on_drift and previous is not None and drift_since is not None:
-        report["drift"] = detect_drift(workspace, records, previous,
-                                       DriftOptions(retrain_on_drift, drift_since, drift_threshold),
-                                       seed=seed)
+    night = {"previous_id": previous, "metric": gate.metric, "tolerance": gate.tolerance,
+             "drift": None, "candidate": None, "promoted": None, "gate": None, "pictures": [],
+             "retrain": gate.retrain}
+    if gate.retrain != "always" and previous is not None:
+        night["encode"], night["pool"] = features_for(previous)
+        night.update(candidate_id=None, outcome="kept")
+        return _finish(workspace, records, night, gate.fail_on_regression, run_key, recorded)
+    if drift.retrain_on_drift and previous is not None and drift.drift_since is not None:
+        night["drift"] = detect_drift(workspace, records, previous, drift, seed=train.seed)
         logger.info("drift of rows %d: error %+.1f%%, nonzeros %+.1f%% (threshold %.0f%%)",
-                    drift_since, 100 * report["drift"]["error_change"],
-                    100 * report["drift"]["nonzeros_change"], 100 * drift_threshold)
-        if not report["drift"]["drifted"]:
-            report["encode"], report["pool"] = features_for(previous)
-            report.update(candidate_id=None, outcome="steady")
-            return _finish(workspace, records, report, fail_on_regression, run_key, recorded)
+                    drift.drift_since, 100 * night["drift"]["error_change"],
+                    100 * night["drift"]["nonzeros_change"], 100 * drift.drift_threshold)
+        if not night["drift"]["drifted"]:
+            night["encode"], night["pool"] = features_for(previous)
+            night.update(candidate_id=None, outcome="steady")
+            return _finish(workspace, records, night, gate.fail_on_regression, run_key, recorded)
 
-    trained = train_flow.fn(workspace, records, n_atoms=n_atoms, patch_size=patch_size, stride=stride,
-                            method=method, coder=coder, coder_options=coder_options,
-                            learner_options=learner_options, preprocessing=preprocessing,
-                            sample_patches=sample_patches, seed=seed, break_lease=break_lease)
+    trained = train_flow.fn(workspace, records, train=train, break_lease=break_lease)
     candidate_id = trained["dict_id"]
     encoded, pooled = features_for(candidate_id)
-    cand_eval = evaluate_task(workspace, records, candidate_id, evaluation, labels=labels, tag="candidate")
-    report.update(candidate_id=candidate_id, train=trained, encode=encoded, pool=pooled,
-                  candidate=cand_eval)
+    cand_eval = evaluate_task(workspace, records, candidate_id, evaluate, labels=labels,
+                              tag="candidate")
+    night.update(candidate_id=candidate_id, train=trained, encode=encoded, pool=pooled,
+                 candidate=cand_eval)
     outcome = outcome_without_comparison(previous, candidate_id)
     if outcome is None:
         features_for(previous)
         prev_eval = evaluate_task(workspace, records, previous,
-                                  dataclasses.replace(evaluation, baselines=(), learning_curve=()),
+                                  dataclasses.replace(evaluate, baselines=(), learning_curve=()),
                                   labels=labels, tag="promoted")
-        verdict = compare(workspace, cand_eval["run_id"], prev_eval["run_id"], metric=metric,
-                          tolerance=tolerance, n_boot=n_boot, seed=seed)
-        report.update(promoted=prev_eval, gate=verdict["gate"])
+        verdict = compare(workspace, cand_eval["run_id"], prev_eval["run_id"], metric=gate.metric,
+                          tolerance=gate.tolerance, n_boot=evaluate.n_boot, seed=evaluate.seed)
+        night.update(promoted=prev_eval, gate=verdict["gate"])
         outcome = verdict["outcome"]
-    report["outcome"] = outcome
-    if pictures:
-        report["pictures"] = render_task(workspace, cand_eval["run_id"], class_names)
-    return _finish(workspace, records, report, fail_on_regression, run_key, recorded)
+    night["outcome"] = outcome
+    if report.pictures:
+        night["pictures"] = render_task(workspace, cand_eval["run_id"], report.class_names)
+    return _finish(workspace, records, night, gate.fail_on_regression, run_key, recorded)
+
+
+def nightly_key_options(labels: str | None, **groups: Any) -> dict:
+    """What of a nightly run's options its key (``gate.nightly_run_key``) hashes: the
+    labels' name and, per option group (``train=TrainOptions(...)``, ...), the fields
+    declared ``decides`` (:func:`~atomline.stages.options.deciding`); workers, pictures and
+    alerts are not."""
+    return {"labels": labels, **{name: deciding(options) for name, options in sorted(groups.items())}}
 
 
 def _finish(workspace: str, records: str, report: dict, fail_on_regression: bool, run_key: str,

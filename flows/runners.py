@@ -4,17 +4,18 @@ Prefect runs the tasks; this module only picks the runner and cuts the work. Exa
 
     from atomline.flows import encode_flow
     from atomline.flows.runners import task_runner
+    from atomline.stages.options import RunnerOptions
 
     # two worker threads on this machine (the default kind)
     encode_flow.with_options(task_runner=task_runner("threads", workers=2))(
-        "archive.zarr", "vibration", workers=2)
+        "archive.zarr", "vibration", runner=RunnerOptions(workers=2))
 
     # a Dask cluster (prefect-dask): an existing scheduler, or a local one when no address
     encode_flow.with_options(task_runner=task_runner("dask", workers=8,
                                                      address="tcp://scheduler:8786"))(
-        "s3://bucket/archive.zarr", "vibration", workers=8)
+        "s3://bucket/archive.zarr", "vibration", runner=RunnerOptions("dask", workers=8))
 
-The ``workers`` flow parameter and the runner's worker count should agree: the flow uses it
+The flow's ``runner.workers`` and the runner's worker count should agree: the flow uses it
 to cut the chunk list into batches (a few per worker) and to limit BLAS threads per task
 so that workers × threads never exceed the cores.
 """

@@ -17,7 +17,9 @@ from typing import Any, Callable
 from .progress import _progress
 from .reports import _describe_serve
 
-DEMO_OPTIONS = dict(n_atoms=128, patch_size=64, stride=32, regions=2, sample_patches=20_000)
+#: The demo's train and pool options (the rest are the declared defaults).
+DEMO_TRAIN = dict(n_atoms=128, patch_size=64, stride=32, sample_patches=20_000)
+DEMO_POOL = dict(regions=2)
 
 
 def _key_values(pairs: list[str]) -> dict:
@@ -70,6 +72,38 @@ def _nightly_params(args: argparse.Namespace) -> dict:
                 drift_threshold=args.drift_threshold, workers=args.workers, retrain=args.retrain,
                 on_bad_chunk=args.on_bad_chunk, break_lease=args.break_lease,
                 **_evaluation_params(args), **_train_params(args), **_pool_params(args))
+
+
+def _evaluate_options(args: argparse.Namespace, **more: Any):
+    from atomline.stages.options import EvaluateOptions
+
+    return EvaluateOptions(folds=args.folds, classifier=args.classifier, baselines=args.baselines,
+                           learning_curve=args.curve, n_boot=args.n_boot, max_rows=args.max_rows,
+                           on_bad_chunk=args.on_bad_chunk, **more)
+
+
+def _report_options(args: argparse.Namespace):
+    from atomline.stages.options import ReportOptions
+
+    return ReportOptions(pictures=args.pictures, class_names=args.class_names)
+
+
+def _nightly_groups(args: argparse.Namespace) -> dict:
+    """The nightly flow's option objects from the command's flags (one ``--seed`` seeds the
+    training and the evaluation, one ``--on-bad-chunk`` holds for every stage)."""
+    from atomline.stages.options import (DriftOptions, EncodeOptions, GateOptions, PoolOptions,
+                                         TrainOptions)
+
+    return dict(
+        labels=args.labels, train=TrainOptions(**_train_params(args)),
+        encode=EncodeOptions(on_bad_chunk=args.on_bad_chunk),
+        pool=PoolOptions(**_pool_params(args), on_bad_chunk=args.on_bad_chunk),
+        evaluate=_evaluate_options(args, seed=args.seed), report=_report_options(args),
+        gate=GateOptions(metric=args.metric, tolerance=args.tolerance,
+                         fail_on_regression=args.fail_on_regression, retrain=args.retrain),
+        drift=DriftOptions(retrain_on_drift=args.retrain_on_drift, drift_since=args.drift_since,
+                           drift_threshold=args.drift_threshold),
+        runner=_runner(args), break_lease=args.break_lease)
 
 
 def _runner(args: argparse.Namespace):
@@ -197,31 +231,34 @@ def _run_train_encoder(args):
 
 def _run_train(args):
     from atomline.flows import train_flow
+    from atomline.stages.options import TrainOptions
 
     with _progress(args.workspace, args.name, (), args.json, status="learning a dictionary"):
-        return _with_runner(train_flow, args)(args.workspace, args.name, break_lease=args.break_lease, **_train_params(args))
+        return _with_runner(train_flow, args)(args.workspace, args.name, break_lease=args.break_lease,
+                                              train=TrainOptions(**_train_params(args)))
 
 
 def _run_encode(args):
     from atomline.flows import encode_flow
+    from atomline.stages.options import EncodeOptions
 
     with _progress(args.workspace, args.name, ("codes",), args.json):
         return _with_runner(encode_flow, args)(
-            args.workspace, args.name, dict_id=args.dictionary, coder=args.coder,
-            coder_options=_coder_params(args), workers=args.workers, overwrite=args.overwrite,
-            batches_per_worker=args.batches_per_worker,
-            on_bad_chunk=args.on_bad_chunk, break_lease=args.break_lease)
+            args.workspace, args.name, dict_id=args.dictionary,
+            encode=EncodeOptions(coder=args.coder, coder_options=_coder_params(args),
+                                 on_bad_chunk=args.on_bad_chunk),
+            runner=_runner(args), overwrite=args.overwrite, break_lease=args.break_lease)
 
 
 def _run_pool(args):
     from atomline.flows import pool_flow
+    from atomline.stages.options import PoolOptions
 
     with _progress(args.workspace, args.name, ("features",), args.json):
-        return _with_runner(pool_flow, args)(args.workspace, args.name, dict_id=args.dictionary,
-                                             workers=args.workers, overwrite=args.overwrite,
-                                             on_bad_chunk=args.on_bad_chunk, break_lease=args.break_lease,
-                                             batches_per_worker=args.batches_per_worker,
-                                             **_pool_params(args))
+        return _with_runner(pool_flow, args)(
+            args.workspace, args.name, dict_id=args.dictionary,
+            pool=PoolOptions(**_pool_params(args), on_bad_chunk=args.on_bad_chunk),
+            runner=_runner(args), overwrite=args.overwrite, break_lease=args.break_lease)
 
 
 def _run_evaluate(args):
@@ -229,7 +266,8 @@ def _run_evaluate(args):
 
     with _progress(args.workspace, args.name, (), args.json, status="evaluating"):
         return _with_runner(evaluate_flow, args)(args.workspace, args.name, dict_id=args.dictionary,
-                                                 on_bad_chunk=args.on_bad_chunk, **_evaluation_params(args))
+                                                 labels=args.labels, evaluate=_evaluate_options(args),
+                                                 report=_report_options(args))
 
 
 def _run_nightly(args):
@@ -237,8 +275,7 @@ def _run_nightly(args):
 
     with _progress(args.workspace, args.name, ("codes", "features"), args.json, status="nightly run"):
         state = _with_runner(nightly_flow, args)(args.workspace, args.name, return_state=True,
-                                                 batches_per_worker=args.batches_per_worker,
-                                                 **_nightly_params(args))
+                                                 **_nightly_groups(args))
     report = state.result(raise_on_failure=False)
     if isinstance(report, BaseException):
         # A run that failed on an error holds the exception as its result, not a report
@@ -255,9 +292,12 @@ def _served(args: argparse.Namespace):
 
     from atomline.flows import nightly_flow
 
-    params = dict(_nightly_params(args), workspace=args.workspace, records=args.name,
-                  batches_per_worker=args.batches_per_worker)
-    params = {k: list(v) if isinstance(v, tuple) else v for k, v in params.items()}
+    import dataclasses
+
+    # A deployment's parameters are JSON: each option object as the dict of its fields.
+    params = {k: json.loads(json.dumps(dataclasses.asdict(v))) if dataclasses.is_dataclass(v) else v
+              for k, v in _nightly_groups(args).items()}
+    params.update(workspace=args.workspace, records=args.name)
     settings = dict(name=args.deployment or f"atomline-nightly-{args.name}",
                     schedule=Cron(args.cron, timezone=args.timezone), parameters=params,
                     description=f"atomline nightly flow over data/{args.name} of {args.workspace}",
@@ -357,6 +397,7 @@ def _run_show(args):
 def _run_demo(args):
     from atomline.flows import nightly_flow
     from atomline.flows.demo import CLASS_NAMES, vibration_records
+    from atomline.stages.options import EvaluateOptions, PoolOptions, ReportOptions, TrainOptions
     from atomline.stages.workspace import Workspace
 
     started = time.perf_counter()
@@ -366,10 +407,10 @@ def _run_demo(args):
         ws.add_records("vibration", records, chunk_rows=250)
         ws.add_labels("vibration", labels)
     with _progress(args.directory, "vibration", ("codes", "features"), args.json, status="demo nightly run"):
-        report = _with_runner(nightly_flow, args)(args.directory, "vibration", seed=args.seed,
-                                                  workers=args.workers, class_names=list(CLASS_NAMES),
-                                                  batches_per_worker=args.batches_per_worker,
-                                                  **DEMO_OPTIONS)
+        report = _with_runner(nightly_flow, args)(
+            args.directory, "vibration", train=TrainOptions(**DEMO_TRAIN, seed=args.seed),
+            pool=PoolOptions(**DEMO_POOL), evaluate=EvaluateOptions(seed=args.seed),
+            report=ReportOptions(class_names=CLASS_NAMES), runner=_runner(args))
     dictionary = ws.load_dictionary(report["candidate_id"])
     report["dictionary"] = {k: dictionary.attrs[k] for k in ("n_atoms", "n_features", "method", "coder",
                                                              "coder_options", "geometry")}

@@ -166,11 +166,13 @@ def run_encode(url: str, name: str, dict_id: str, kind: str, workers: int, scrat
 
     from atomline.flows import encode_flow
     from atomline.flows.runners import task_runner
+    from atomline.stages.options import RunnerOptions
 
     runner = task_runner(kind, workers, address, dask_options={"local_directory": scratch})
     t0, c0 = time.perf_counter(), os.times()
-    state = encode_flow.with_options(task_runner=runner)(url, name, dict_id=dict_id, workers=workers,
-                                                         overwrite=True, return_state=True)
+    state = encode_flow.with_options(task_runner=runner)(
+        url, name, dict_id=dict_id, runner=RunnerOptions(workers=workers), overwrite=True,
+        return_state=True)
     wall, c1 = time.perf_counter() - t0, os.times()
     summary = state.result()
     run_id = state.state_details.flow_run_id

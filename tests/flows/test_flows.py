@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 import pytest
 
@@ -9,12 +11,14 @@ from atomline.flows import encode_flow, nightly_flow
 from atomline.flows.cli import main
 from atomline.flows.runners import plan_batches, task_runner
 from atomline.stages.errors import InputError
+from atomline.stages.options import EncodeOptions, GateOptions, PoolOptions, RunnerOptions, TrainOptions
 from atomline.stages.workspace import Workspace
 
 pytestmark = pytest.mark.usefixtures("prefect_harness")
 
-NIGHTLY = dict(n_atoms=48, patch_size=64, stride=32, sample_patches=6000, regions=2,
-               coder_options={"n_nonzero": 4}, workers=2)
+TRAIN = TrainOptions(n_atoms=48, patch_size=64, stride=32, sample_patches=6000,
+                     coder_options={"n_nonzero": 4})
+NIGHTLY = dict(train=TRAIN, pool=PoolOptions(regions=2), runner=RunnerOptions(workers=2))
 
 
 @pytest.fixture(scope="module")
@@ -53,15 +57,16 @@ def test_nightly_learns_encodes_pools_and_beats_raw(archive, capsys):
     assert f"these inputs were decided already ({report['decision_id']})" in capsys.readouterr().out
     assert (len(ws.evaluations()), len(ws.decisions())) == (1, 1)
     # Other options that reach the same dictionary are a new run: nothing to promote.
-    other = nightly_flow(archive, "vib", tolerance=0.02, **NIGHTLY)
+    other = nightly_flow(archive, "vib", gate=GateOptions(tolerance=0.02), **NIGHTLY)
     assert other["outcome"] == "unchanged" and "already_decided" not in other
 
 
 def test_gate_keeps_the_better_dictionary(archive):
     promoted = Workspace.open(archive).promoted
     assert promoted is not None  # set by the test above
-    worse = dict(NIGHTLY, n_atoms=2, coder_options={"n_nonzero": 1}, sample_patches=500)
-    report = nightly_flow(archive, "vib", tolerance=0.0, **worse)
+    worse = dict(NIGHTLY, train=dataclasses.replace(TRAIN, n_atoms=2, coder_options={"n_nonzero": 1},
+                                                   sample_patches=500))
+    report = nightly_flow(archive, "vib", gate=GateOptions(tolerance=0.0), **worse)
     assert report["outcome"] == "regression"
     assert report["candidate"]["features"]["accuracy"] < report["promoted"]["features"]["accuracy"]
     assert Workspace.open(archive).promoted == promoted
@@ -75,8 +80,9 @@ def test_encode_flow_same_codes_for_any_worker_count(archive, workers):
     dict_id = ws.promoted
     reference = {k: ws.root[f"codes/{dict_id}/vib/{k}"][:] for k in ("index", "value", "count")}
     summary = encode_flow.with_options(task_runner=task_runner("threads", workers))(
-        archive, "vib", dict_id=dict_id, coder="omp", coder_options={"n_nonzero": 4},
-        workers=workers, overwrite=True)
+        archive, "vib", dict_id=dict_id,
+        encode=EncodeOptions(coder="omp", coder_options={"n_nonzero": 4}),
+        runner=RunnerOptions(workers=workers), overwrite=True)
     assert summary["encoded"] == 15
     for k, ref in reference.items():
         np.testing.assert_array_equal(ws.root[f"codes/{dict_id}/vib/{k}"][:], ref)

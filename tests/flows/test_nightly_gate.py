@@ -3,6 +3,7 @@ keeps both, artifacts are created and read back, the schedule deployment is buil
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import uuid
 
@@ -13,14 +14,18 @@ from prefect.client.schemas.filters import ArtifactFilter, ArtifactFilterKey
 from atomline.flows import STATE_NAMES, evaluate_flow, nightly_flow
 from atomline.flows.artifacts import artifact_key
 from atomline.flows.cli import main
+from atomline.stages.options import (DriftOptions, EvaluateOptions, GateOptions, PoolOptions,
+                                     ReportOptions, RunnerOptions, TrainOptions)
 from atomline.stages.workspace import Workspace
 
 pytestmark = [pytest.mark.usefixtures("prefect_harness"), pytest.mark.slow]
 
-GOOD = dict(n_atoms=48, patch_size=64, stride=32, sample_patches=6000, regions=2,
-            coder_options={"n_nonzero": 4}, workers=2, baselines=["raw"], learning_curve=[0.2],
-            n_boot=500)
-WORSE = dict(GOOD, n_atoms=2, coder_options={"n_nonzero": 1}, sample_patches=500)
+TRAIN = TrainOptions(n_atoms=48, patch_size=64, stride=32, sample_patches=6000,
+                     coder_options={"n_nonzero": 4})
+GOOD = dict(train=TRAIN, pool=PoolOptions(regions=2), runner=RunnerOptions(workers=2),
+            evaluate=EvaluateOptions(baselines=["raw"], learning_curve=[0.2], n_boot=500))
+WORSE = dict(GOOD, train=dataclasses.replace(TRAIN, n_atoms=2, coder_options={"n_nonzero": 1},
+                                             sample_patches=500))
 
 
 @pytest.fixture(scope="module")
@@ -36,7 +41,7 @@ def archive(demo_small):
 @pytest.fixture(scope="module")
 def two_nights(archive):
     first = nightly_flow(archive, "vib", return_state=True, **GOOD)
-    second = nightly_flow(archive, "vib", return_state=True, tolerance=0.01, **WORSE)
+    second = nightly_flow(archive, "vib", return_state=True, gate=GateOptions(tolerance=0.01), **WORSE)
     return first, second
 
 
@@ -104,7 +109,8 @@ def test_artifacts_are_created_and_read_back(archive, two_nights):
 def test_fail_on_regression_ends_in_failed_state(archive, two_nights):
     ws = Workspace.open(archive)
     history = (len(ws.evaluations()), len(ws.decisions()))
-    state = nightly_flow(archive, "vib", return_state=True, fail_on_regression=True, **WORSE)
+    state = nightly_flow(archive, "vib", return_state=True,
+                         gate=GateOptions(tolerance=0.01, fail_on_regression=True), **WORSE)
     assert state.is_failed() and state.name == "Regression"
     report = state.result(raise_on_failure=False)
     assert report["outcome"] == "regression"
@@ -117,8 +123,9 @@ def test_fail_on_regression_ends_in_failed_state(archive, two_nights):
 
 
 def test_evaluate_flow_stores_pictures_and_artifacts(archive, two_nights):
-    manifest = evaluate_flow(archive, "vib", baselines=["raw"], learning_curve=[], n_boot=100,
-                             class_names=["steady", "impacts", "mesh", "rub"])
+    manifest = evaluate_flow(archive, "vib", evaluate=EvaluateOptions(baselines=["raw"], learning_curve=[],
+                                                                      n_boot=100),
+                             report=ReportOptions(class_names=["steady", "impacts", "mesh", "rub"]))
     ws = Workspace.open(archive)
     assert [p.split("/")[1] for p in manifest["pictures"]] == [manifest["run_id"]] * 4
     assert {p["path"] for p in ws.pictures()} >= set(manifest["pictures"])
@@ -130,7 +137,7 @@ def test_serve_builds_a_cron_deployment(archive, capsys):
     info = json.loads(capsys.readouterr().out)
     assert info["deployment"] == "atomline-nightly-vib" and info["flow"] == "atomline-nightly"
     assert info["schedules"] == [{"cron": "30 3 * * *", "timezone": "UTC"}]
-    assert info["parameters"]["n_atoms"] == 32 and info["parameters"]["workspace"] == archive
+    assert info["parameters"]["train"]["n_atoms"] == 32 and info["parameters"]["workspace"] == archive
     assert info["served"] is False
     # The parameters are the flow's own, as Prefect checks for each scheduled run.
     import inspect
@@ -139,13 +146,14 @@ def test_serve_builds_a_cron_deployment(archive, capsys):
 
     deployment = serve_deployment(_parser().parse_args(["serve", archive, "vib", "--dry-run"]))
     assert set(deployment.parameters) <= set(inspect.signature(nightly_flow.fn).parameters)
-    assert deployment.parameters["tolerance"] == 0.01 and deployment.enforce_parameter_schema
+    assert deployment.parameters["gate"]["tolerance"] == 0.01 and deployment.enforce_parameter_schema
 
 
 def test_no_drift_means_no_retrain(archive, two_nights):
     ws = Workspace.open(archive)
     before = ws.dictionary_ids()
-    report = nightly_flow(archive, "vib", retrain_on_drift=True, drift_since=300, **GOOD)
+    report = nightly_flow(archive, "vib", drift=DriftOptions(retrain_on_drift=True, drift_since=300),
+                          **GOOD)
     assert report["outcome"] == "steady" and not report["drift"]["drifted"]
     assert report["drift"]["new"]["rows"] == [300, 600]
     assert ws.dictionary_ids() == before  # nothing trained

@@ -19,6 +19,7 @@ def test_batch_raising_mid_way_is_retried_under_dask(tmp_path, demo_small, monke
     from prefect_dask import DaskTaskRunner
 
     from atomline.flows import encode_flow
+    from atomline.stages.options import RunnerOptions
 
     X, _ = demo_small
     url = str(tmp_path / "ws.zarr")
@@ -44,8 +45,8 @@ def test_batch_raising_mid_way_is_retried_under_dask(tmp_path, demo_small, monke
     runner = DaskTaskRunner(cluster_kwargs={"n_workers": 1, "processes": False,
                                             "threads_per_worker": 1, "dashboard_address": ":0",
                                             "local_directory": str(tmp_path / "dask")})
-    summary = encode_flow.with_options(task_runner=runner)(url, "vib", dict_id=dict_id, workers=1,
-                                                         batches_per_worker=2)
+    summary = encode_flow.with_options(task_runner=runner)(
+        url, "vib", dict_id=dict_id, runner=RunnerOptions(workers=1, batches_per_worker=2))
     assert failed == [True]
     # The retry skipped the chunk the failed attempt had committed, and coded the rest.
     assert summary["skipped"] == 1 and summary["encoded"] == p["n_chunks"] - 1

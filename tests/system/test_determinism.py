@@ -16,13 +16,16 @@ import pytest
 
 from atomline.flows import nightly_flow
 from atomline.flows.runners import task_runner
+from atomline.stages.options import (EvaluateOptions, PoolOptions, ReportOptions, RunnerOptions,
+                                     TrainOptions)
 from atomline.stages.workspace import Workspace
 
 pytestmark = [pytest.mark.slow, pytest.mark.usefixtures("prefect_harness")]
 
-RUN = dict(n_atoms=160, patch_size=64, stride=16, sample_patches=6000, regions=2,
-           coder_options={"n_nonzero": 6}, workers=2, batches_per_worker=4, n_boot=200,
-           pictures=False)
+RUN = dict(train=TrainOptions(n_atoms=160, patch_size=64, stride=16, sample_patches=6000,
+                             coder_options={"n_nonzero": 6}),
+           pool=PoolOptions(regions=2), evaluate=EvaluateOptions(n_boot=200),
+           report=ReportOptions(pictures=False), runner=RunnerOptions(workers=2, batches_per_worker=4))
 
 
 def _data_files(root):

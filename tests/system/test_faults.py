@@ -241,6 +241,7 @@ def test_only_transient_failures_are_worth_retrying():
 @pytest.mark.usefixtures("prefect_harness")
 def test_bad_input_chunk_is_not_retried_by_the_flow(prepared, tmp_path, monkeypatch):
     from atomline.flows import encode_flow
+    from atomline.stages.options import RunnerOptions
 
     url0, _, dict_id = prepared
     url = _copy(url0, tmp_path)
@@ -254,7 +255,7 @@ def test_bad_input_chunk_is_not_retried_by_the_flow(prepared, tmp_path, monkeypa
 
     monkeypatch.setattr(Workspace, "read_chunk", counting)
     with pytest.raises(BadChunk, match="chunk 5"):
-        encode_flow(url, "vib", dict_id=dict_id, workers=1, batches_per_worker=1)
+        encode_flow(url, "vib", dict_id=dict_id, runner=RunnerOptions(workers=1, batches_per_worker=1))
     assert reads.count(5) == 1  # deterministic: one attempt, not three
 
 

@@ -20,12 +20,16 @@ from atomline.flows import encode_flow, evaluate_flow, nightly_flow, pool_flow, 
 from atomline.flows.runners import task_runner
 from atomline.stages import encode, pool
 from atomline.stages.errors import InputError, LayoutError, NotFound
+from atomline.stages.options import (EvaluateOptions, GateOptions, PoolOptions, ReportOptions,
+                                     RunnerOptions, TrainOptions)
 from atomline.stages.workspace import STORAGE_OPTIONS_ENV, Workspace, resolve_storage_options
 from atomline.stages.options import PoolOptions, TrainOptions
 
-NIGHTLY = dict(n_atoms=32, patch_size=64, stride=32, sample_patches=3000, regions=2,
-               coder_options={"n_nonzero": 4}, workers=2, learning_curve=[], n_boot=200,
-               pictures=False)
+NIGHTLY = dict(train=TrainOptions(n_atoms=32, patch_size=64, stride=32, sample_patches=3000,
+                                 coder_options={"n_nonzero": 4}),
+               pool=PoolOptions(regions=2), runner=RunnerOptions(workers=2),
+               evaluate=EvaluateOptions(learning_curve=[], n_boot=200),
+               report=ReportOptions(pictures=False))
 
 
 # ---------------------------------------------------------------------------- helpers
@@ -114,14 +118,16 @@ def test_flows_on_s3_through_storage_options(s3_endpoint, demo_small):
         w.addHandler(handler)
         w.setLevel(logging.INFO)
     try:
-        trained = train_flow(url, "vib", n_atoms=32, patch_size=64, stride=32, sample_patches=3000,
-                             seed=1, coder_options={"n_nonzero": 4})
+        trained = train_flow(url, "vib", train=TrainOptions(n_atoms=32, patch_size=64, stride=32,
+                                                            sample_patches=3000, seed=1,
+                                                            coder_options={"n_nonzero": 4}))
         dict_id = trained["dict_id"]
         encoded = encode_flow.with_options(task_runner=task_runner("threads", 2))(
-            url, "vib", dict_id=dict_id, workers=2)
+            url, "vib", dict_id=dict_id, runner=RunnerOptions(workers=2))
         pooled = pool_flow.with_options(task_runner=task_runner("threads", 2))(
-            url, "vib", dict_id=dict_id, regions=2, workers=2)
-        evaluation = evaluate_flow(url, "vib", dict_id=dict_id, learning_curve=[], n_boot=200)
+            url, "vib", dict_id=dict_id, pool=PoolOptions(regions=2), runner=RunnerOptions(workers=2))
+        evaluation = evaluate_flow(url, "vib", dict_id=dict_id,
+                                   evaluate=EvaluateOptions(learning_curve=[], n_boot=200))
     finally:
         for w, level in zip(watched, levels):
             w.removeHandler(handler)
@@ -223,26 +229,26 @@ def test_nightly_after_append_encodes_only_new_chunks(demo_small, memory_url):
     ws.add_records("vib", X[:430], chunk_rows=40)  # 10 full chunks and one of 30 rows
     ws.add_labels("vib", y[:430])
     runner = task_runner("threads", 2)
-    first = nightly_flow.with_options(task_runner=runner)(memory_url, "vib", retrain="if-missing",
+    first = nightly_flow.with_options(task_runner=runner)(memory_url, "vib", gate=GateOptions(retrain="if-missing"),
                                                           **NIGHTLY)
     assert first["outcome"] == "first" and first["encode"]["encoded"] == 11
     dict_id = first["promoted_id"]
 
     ws.append_records("vib", X[430:], labels=y[430:])  # 600 rows: chunks 10..14 change or are new
-    again = nightly_flow.with_options(task_runner=runner)(memory_url, "vib", retrain="if-missing",
+    again = nightly_flow.with_options(task_runner=runner)(memory_url, "vib", gate=GateOptions(retrain="if-missing"),
                                                           **NIGHTLY)
     assert again["outcome"] == "kept" and again["promoted_id"] == dict_id
     assert (again["encode"]["encoded"], again["encode"]["skipped"]) == (5, 10)
     assert (again["pool"]["pooled"], again["pool"]["skipped"]) == (5, 10)
 
-    reference = _reference_encode(X, y, ws.load_dictionary(dict_id), 40, NIGHTLY["regions"])
+    reference = _reference_encode(X, y, ws.load_dictionary(dict_id), 40, NIGHTLY["pool"].regions)
     got = _arrays(ws, dict_id, "vib")
     for key, value in reference.items():
         np.testing.assert_array_equal(got[key], value, err_msg=key)
 
     # Retraining: the new archive gives a new candidate, encoded whole into its own group;
     # the promoted features were already up to date, so nothing of them is redone.
-    retrained = nightly_flow.with_options(task_runner=runner)(memory_url, "vib", retrain="always",
+    retrained = nightly_flow.with_options(task_runner=runner)(memory_url, "vib", gate=GateOptions(retrain="always"),
                                                               **NIGHTLY)
     assert retrained["candidate_id"] != dict_id
     assert retrained["encode"]["encoded"] == 15
@@ -255,9 +261,9 @@ def test_retrain_never_needs_a_promoted_dictionary(memory_url):
     ws = Workspace.open(memory_url, create=True)
     ws.add_records("r", np.ones((8, 64), np.float32))
     with pytest.raises(NotFound, match="retrain='never'"):
-        nightly_flow(memory_url, "r", retrain="never")
+        nightly_flow(memory_url, "r", gate=GateOptions(retrain="never"))
     with pytest.raises(InputError, match="retrain"):
-        nightly_flow(memory_url, "r", retrain="sometimes")
+        nightly_flow(memory_url, "r", gate=GateOptions(retrain="sometimes"))
 
 
 # ---------------------------------------------------------------------------- runners
@@ -288,7 +294,7 @@ def test_failed_batch_is_retried_and_resumes_at_chunk_level(demo_small, memory_u
 
     monkeypatch.setattr(encode, "code", flaky)
     summary = encode_flow.with_options(task_runner=task_runner("threads", 1))(
-        memory_url, "vib", dict_id=dict_id, workers=1, batches_per_worker=1)
+        memory_url, "vib", dict_id=dict_id, runner=RunnerOptions(workers=1, batches_per_worker=1))
     # One batch of six chunks: chunk 0 was committed before the failure, so the retry
     # skips it and codes the other five; 6 coder calls + the failed one.
     assert summary["encoded"] == 5 and summary["skipped"] == 1

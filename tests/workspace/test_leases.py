@@ -346,6 +346,7 @@ def test_writer_paused_past_its_ttl_commits_nothing_after_another_run_took_the_l
 def test_encode_flow_stops_at_once_when_its_lease_is_taken(tmp_path, demo_small, monkeypatch):
     from atomline.flows import encode_flow
     from atomline.stages.errors import LeaseLost
+    from atomline.stages.options import RunnerOptions
 
     X, _ = demo_small
     url = str(tmp_path / "ws.zarr")
@@ -362,7 +363,7 @@ def test_encode_flow_stops_at_once_when_its_lease_is_taken(tmp_path, demo_small,
     monkeypatch.setattr(encode, "code", code_while_another_run_takes_the_lease)
     # LeaseLost (not LeaseHeld): the flow handed its token to the task, which checked it.
     with pytest.raises(LeaseLost, match="second run"):
-        encode_flow(url, "vib", dict_id=dict_id, workers=1, batches_per_worker=1)
+        encode_flow(url, "vib", dict_id=dict_id, runner=RunnerOptions(workers=1, batches_per_worker=1))
     assert len(calls) == 2  # a lost lease is not retried
     assert Workspace.open(url).output(path).pending() == prepared["pending"][1:]
     assert ws.lease_holder(path)["run"] == "second run"
