@@ -22,7 +22,7 @@ OTHER = {
                   preprocessing={"center": False}, sample_patches=1000, seed=7),
     "encode": dict(coder="omp", coder_options={"n_nonzero": 2}, on_bad_chunk="skip"),
     "pool": dict(reduce="mean", split_sign=False, regions=2, on_bad_chunk="skip"),
-    "evaluate": dict(folds=3, classifier="linear-svm", C=0.5, max_rows=500, seed=3,
+    "evaluate": dict(split="time", test_records="vib", test_share=0.3, folds=3, classifier="linear-svm", C=0.5, max_rows=500, seed=3,
                      baselines=("raw",), learning_curve=(0.5,), n_boot=100, on_bad_chunk="skip"),
     "report": dict(pictures=False, class_names=("a", "b")),
     "gate": dict(metric="macro_f1", tolerance=0.05, fail_on_regression=True, retrain="if-missing"),
@@ -31,7 +31,8 @@ OTHER = {
                    dask_options={"local_directory": "/tmp"}, address="tcp://scheduler:8786"),
 }
 #: Fields whose other value needs another field changed with it (an address needs dask).
-WITH = {("runner", "address"): {"runner": "dask"}}
+WITH = {("runner", "address"): {"runner": "dask"},
+        ("evaluate", "test_records"): {"split": "test-set"}}
 #: What the key hashed before the flows took option objects (their flat parameters then),
 #: by group: the same fields count now. The encode group's coder and coder options are new
 #: to the nightly flow (it always encoded with the dictionary's own coder) and count, as
@@ -41,7 +42,7 @@ DECIDING_BEFORE = {
               "learner_options", "preprocessing", "sample_patches", "seed"},
     "encode": {"on_bad_chunk"},
     "pool": {"reduce", "split_sign", "regions", "on_bad_chunk"},
-    "evaluate": {"folds", "classifier", "C", "max_rows", "seed", "baselines", "learning_curve",
+    "evaluate": {"split", "test_records", "test_share", "folds", "classifier", "C", "max_rows", "seed", "baselines", "learning_curve",
                  "n_boot", "on_bad_chunk"},
     "report": set(), "gate": {"metric", "tolerance", "retrain"},
     "drift": {"retrain_on_drift", "drift_since", "drift_threshold"}, "runner": set(),
