@@ -23,10 +23,11 @@ from prefect.artifacts import (
     update_progress_artifact,
 )
 
+from atomline.stages.gate import best_baseline
 from atomline.stages.kernels.scoring import SCORES
 from atomline.stages.workspace import Workspace
 
-__all__ = ["artifact_key", "score_table", "summary_markdown", "publish_evaluation", "ChunkProgress"]
+__all__ = ["artifact_key", "score_table", "baseline_summary", "summary_markdown", "publish_evaluation", "ChunkProgress"]
 
 #: Pictures larger than this in total are listed by path only, not embedded.
 _EMBED_LIMIT = 1_500_000
@@ -63,6 +64,26 @@ def score_table(evaluation: dict) -> list[dict]:
     return rows
 
 
+def baseline_summary(evaluation: dict) -> str | None:
+    """One line naming the best baseline dictionary (random patches or PCA) beside the raw
+    records and the sparse features, flagged when the simpler dictionary does as well or
+    better; ``None`` when the evaluation ran no dictionary baseline.
+
+    Parameters
+    ----------
+    evaluation : dict
+        A manifest of ``evaluate_features``.
+    """
+    best = best_baseline(evaluation, "accuracy")
+    if best is None:
+        return None
+    raw = f" beside raw records {evaluation['raw']['accuracy']:.3f}" if "raw" in evaluation else ""
+    features, simpler = evaluation["features"]["accuracy"], evaluation[best]["accuracy"]
+    return (f"Best baseline dictionary: {best} {simpler:.3f}{raw}; sparse features "
+            f"{features:.3f}" + (" — a simpler dictionary does as well or better"
+                                 if simpler >= features else ""))
+
+
 def summary_markdown(evaluation: dict, *, title: str, lines: list[str] | None = None,
                      pictures: dict[str, bytes] | None = None, workspace_url: str = "") -> str:
     """The markdown summary of one evaluation.
@@ -86,8 +107,11 @@ def summary_markdown(evaluation: dict, *, title: str, lines: list[str] | None = 
     md += lines or []
     md += ["", f"Dictionary `{evaluation['dict_id']}`, coder `{evaluation['coder']}`, pooling "
            f"`{evaluation['pooling']}`; {evaluation['n_rows']} labelled rows, "
-           f"{evaluation['folds']}-fold stratified cross-validation (out-of-fold scores).", "",
-           "| set | accuracy | balanced accuracy | macro-F1 | features − set (accuracy) | 95% interval |",
+           f"{evaluation['folds']}-fold stratified cross-validation (out-of-fold scores).", ""]
+    simpler = baseline_summary(evaluation)
+    if simpler:
+        md += [simpler + ".", ""]
+    md += ["| set | accuracy | balanced accuracy | macro-F1 | features − set (accuracy) | 95% interval |",
            "|---|---|---|---|---|---|"]
     for r in score_table(evaluation):
         diff = "" if r["features_minus_set"] is None else f"{r['features_minus_set']:+.3f}"
@@ -95,12 +119,11 @@ def summary_markdown(evaluation: dict, *, title: str, lines: list[str] | None = 
                   f"{r['macro_f1']:.3f} | {diff} | {r['interval_95'] or ''} |")
     curve = evaluation.get("learning_curve") or {}
     if curve:
+        shown = [k for k in ("features", "raw", best_baseline(evaluation, "accuracy")) if k in curve]
         md += ["", "Learning curve (accuracy against labelled training rows):", "",
-               "| rows | " + " | ".join(k for k in ("features", "raw") if k in curve) + " |",
-               "|---|" + "---|" * sum(k in curve for k in ("features", "raw"))]
+               "| rows | " + " | ".join(shown) + " |", "|---|" + "---|" * len(shown)]
         for i, n in enumerate(curve["train_rows"]):
-            md.append(f"| {n:.0f} | " + " | ".join(f"{curve[k][i]:.3f}" for k in ("features", "raw")
-                                                   if k in curve) + " |")
+            md.append(f"| {n:.0f} | " + " | ".join(f"{curve[k][i]:.3f}" for k in shown) + " |")
     if pictures:
         md += ["", "## Pictures", ""]
         embed = sum(len(b) for b in pictures.values()) <= _EMBED_LIMIT

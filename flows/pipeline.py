@@ -37,10 +37,12 @@ from atomline.stages.checks import check_retrain, promoted_or_named
 from atomline.stages.drift import detect_drift
 from atomline.stages.encode import codes_path, encode_task, prepare_encode
 from atomline.stages.evaluate import evaluate_task
-from atomline.stages.gate import (OUTCOMES, STATE_NAMES, compare, nightly_run_key,
-                                  outcome_without_comparison, record_decision, recorded_decision)
+from atomline.stages.gate import (OUTCOMES, STATE_NAMES, against_references, compare,
+                                  describe_references, nightly_run_key, outcome_without_comparison,
+                                  record_decision, recorded_decision, required_baselines,
+                                  with_references)
 from atomline.stages.report import render_report
-from atomline.stages.options import (RETRAIN, DriftOptions, EncodeOptions, EvaluateOptions,
+from atomline.stages.options import (BASELINES, RETRAIN, DriftOptions, EncodeOptions, EvaluateOptions,
                                      GateOptions, PoolOptions, ReportOptions, RunnerOptions,
                                      TrainOptions, deciding)
 from atomline.stages.pool import features_path, pool_task, prepare_pool
@@ -194,6 +196,15 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None,
     ``[low, high]`` its paired-bootstrap 95 % interval (``gate``: ``GateOptions``). Outcome (``OUTCOMES``):
     ``regression`` when ``d < -tolerance``; ``promoted`` when ``d >= -tolerance`` and
     ``low >= -tolerance``; ``inconclusive`` otherwise (see ``stages.gate``).
+
+    **Raw records and baselines.** A candidate that would be promoted — the first one
+    too — must also beat the raw records on its own evaluation: its ``metric`` higher than
+    a classifier's on the raw records, and the paired interval's low end not below
+    ``-tolerance``; else the outcome is ``below_raw``. With ``gate.beat_baselines`` it must
+    beat the best dictionary baseline (random patches or PCA) the same way, else
+    ``below_baseline``. The candidate's evaluation always runs the baselines the gate
+    reads (raw, and the dictionary ones with ``beat_baselines``), whatever
+    ``evaluate.baselines`` holds.
     The pointer moves only after the candidate's features and evaluation are complete.
     Every decision is appended to the workspace (``Workspace.decisions``).
 
@@ -237,7 +248,9 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None,
         of :data:`OUTCOMES`), ``candidate`` and ``promoted`` evaluations, ``gate`` (the
         comparison), the train/encode/pool manifests, ``drift``, ``pictures``, the
         promoted id after the run, ``decision_id``, and ``already_decided`` (the id of
-        the recorded decision reported instead of a new one, when there was one). With ``gate.fail_on_regression`` a regression raises
+        the recorded decision reported instead of a new one, when there was one),
+        ``references`` (the candidate against the raw records and the best baseline,
+        ``gate.against_references``). With ``gate.fail_on_regression`` a regression raises
         instead; call with ``return_state=True`` to read the report from the state.
     """
     logger = get_run_logger()
@@ -265,7 +278,7 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None,
 
     night = {"previous_id": previous, "metric": gate.metric, "tolerance": gate.tolerance,
              "drift": None, "candidate": None, "promoted": None, "gate": None, "pictures": [],
-             "retrain": gate.retrain}
+             "references": None, "retrain": gate.retrain}
     if gate.retrain != "always" and previous is not None:
         night["encode"], night["pool"] = features_for(previous)
         night.update(candidate_id=None, outcome="kept")
@@ -283,10 +296,16 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None,
     trained = train_flow.fn(workspace, records, train=train, break_lease=break_lease)
     candidate_id = trained["dict_id"]
     encoded, pooled = features_for(candidate_id)
-    cand_eval = evaluate_task(workspace, records, candidate_id, evaluate, labels=labels,
-                              tag="candidate")
+    # The gate reads the candidate's comparisons with the raw records (and the baselines).
+    wanted = set(evaluate.baselines) | set(required_baselines(gate.beat_baselines))
+    cand_eval = evaluate_task(workspace, records, candidate_id,
+                              dataclasses.replace(evaluate, baselines=tuple(
+                                  b for b in BASELINES if b in wanted)),
+                              labels=labels, tag="candidate")
+    references = against_references(cand_eval, metric=gate.metric, tolerance=gate.tolerance,
+                                    beat_baselines=gate.beat_baselines)
     night.update(candidate_id=candidate_id, train=trained, encode=encoded, pool=pooled,
-                 candidate=cand_eval)
+                 candidate=cand_eval, references=references)
     outcome = outcome_without_comparison(previous, candidate_id)
     if outcome is None:
         features_for(previous)
@@ -297,7 +316,7 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None,
                           tolerance=gate.tolerance, n_boot=evaluate.n_boot, seed=evaluate.seed)
         night.update(promoted=prev_eval, gate=verdict["gate"])
         outcome = verdict["outcome"]
-    night["outcome"] = outcome
+    night["outcome"] = with_references(outcome, references)
     if report.pictures:
         night["pictures"] = render_task(workspace, cand_eval["run_id"], report.class_names)
     return _finish(workspace, records, night, gate.fail_on_regression, run_key, recorded)
@@ -334,6 +353,9 @@ def _finish(workspace: str, records: str, report: dict, fail_on_regression: bool
         lines.append(f"Gate on {report['metric']}: candidate {gate['a']:.3f}, promoted {gate['b']:.3f}, "
                      f"difference {gate['difference']:+.3f}, 95% interval [{gate['low']:+.3f}, "
                      f"{gate['high']:+.3f}], tolerance {report['tolerance']}.")
+    if report.get("references"):
+        lines += [line[0].upper() + line[1:] + "." for line in
+                  describe_references(report["references"], report["metric"], report["tolerance"])]
     if report["drift"]:
         d = report["drift"]
         lines.append(f"Drift: reconstruction error {100 * d['error_change']:+.1f}%, nonzeros "

@@ -4,17 +4,18 @@ The nightly flow trains a candidate, encodes, pools and evaluates it; then this 
 decides what happens to it. The steps, as plain functions over the workspace (no Prefect:
 the flow keeps the run's state, events, artifacts and logging):
 
-0. :func:`against_references` — whether the candidate's features beat the raw records
-   (and, when asked, the best dictionary baseline: random patches or PCA) on the
-   candidate's own evaluation; if not, the outcome is ``below_raw`` or ``below_baseline``
-   and nothing is promoted.
 1. :func:`outcome_without_comparison` — ``first`` when nothing is promoted yet,
    ``unchanged`` when the candidate *is* the promoted dictionary (same inputs give the same
    id); otherwise the two must be compared.
 2. :func:`compare` — a paired bootstrap of the two evaluations on the same rows
    (:func:`compare_evaluations`), and the rule (:func:`gate_decision`): ``regression``,
    ``promoted`` or ``inconclusive``.
-3. :func:`record_decision` — the promotion is checked, the decision appended to the
+3. :func:`against_references` — a candidate that would be promoted (``first`` or
+   ``promoted``) must also beat the raw records, and with ``GateOptions.beat_baselines``
+   the best dictionary baseline (random patches or PCA), on its own evaluation
+   (:func:`with_references`); if not, the outcome is ``below_raw`` or ``below_baseline``
+   and nothing is promoted. The first run is checked too.
+4. :func:`record_decision` — the promotion is checked, the decision appended to the
    workspace (``decisions/<id>``), and only then the pointer moved. A run killed between
    the two finds its decision when rerun and only moves the pointer.
 
@@ -43,19 +44,21 @@ from .kernels.scoring import paired_bootstrap
 from .workspace import Workspace, fingerprint_params
 
 __all__ = ["OUTCOMES", "STATE_NAMES", "GATE_OUTCOMES", "DICTIONARY_BASELINES", "beats",
-           "best_baseline", "required_baselines", "against_references", "compare_evaluations",
+           "best_baseline", "required_baselines", "against_references", "describe_references",
+           "with_references", "compare_evaluations",
            "gate_decision", "outcome_without_comparison", "compare", "nightly_run_key",
            "recorded_decision", "record_decision"]
 
 #: What a nightly run can end with.
 OUTCOMES = {
-    "first": "no dictionary was promoted yet; the candidate is promoted",
+    "first": "no dictionary was promoted yet and the candidate's features beat the raw "
+             "records; the candidate is promoted",
     "below_raw": "the candidate's features did not beat the raw records (higher score, and "
                  "an interval whose low end stays within the tolerance); not promoted",
     "below_baseline": "a simpler dictionary (random patches or PCA) did as well as the "
                       "candidate's features or better; not promoted",
     "promoted": "the candidate is not worse than the promoted one beyond the tolerance, "
-                "and its interval agrees; promoted",
+                "its interval agrees, and its features beat the raw records; promoted",
     "unchanged": "the candidate is the promoted dictionary (same inputs); nothing to do",
     "inconclusive": "the candidate is within the tolerance but its interval reaches below it; "
                     "not promoted",
@@ -185,6 +188,60 @@ def against_references(evaluation: dict, *, metric: str, tolerance: float,
     elif beat_baselines and not beats(out["versus_baseline"], tolerance):
         out["outcome"] = "below_baseline"
     return out
+
+
+def with_references(outcome: str, references: dict) -> str:
+    """The outcome once the comparisons with the raw records (and baselines) are counted.
+
+    A candidate that would be promoted (``first``, or ``promoted`` against the promoted
+    dictionary) is not when :func:`against_references` found it does not beat the raw
+    records (``below_raw``) or the best baseline (``below_baseline``). Every other outcome
+    stands: a regression against the promoted dictionary stays a regression (and raises
+    its alert), whatever the raw records score.
+
+    Parameters
+    ----------
+    outcome : str
+        The outcome without the references (a key of :data:`OUTCOMES`).
+    references : dict
+        :func:`against_references`' result.
+
+    Returns
+    -------
+    str
+        A key of :data:`OUTCOMES`.
+    """
+    if outcome in _PROMOTING and references["outcome"] is not None:
+        return references["outcome"]
+    return outcome
+
+
+def describe_references(references: dict, metric: str, tolerance: float) -> list[str]:
+    """Plain-text lines of :func:`against_references`' result, for the nightly reports
+    (CLI text and markdown artifact): the features against the raw records, and the best
+    dictionary baseline beside them, so a simpler dictionary doing better shows at once.
+
+    Parameters
+    ----------
+    references : dict
+        :func:`against_references`' result.
+    metric : str
+    tolerance : float
+
+    Returns
+    -------
+    list of str
+    """
+    def line(label: str, c: dict) -> str:
+        return (f"{label} on {metric}: features {c['a']:.3f} vs {c['b']:.3f}, difference "
+                f"{c['difference']:+.3f}, 95% interval [{c['low']:+.3f}, {c['high']:+.3f}], "
+                f"tolerance {tolerance}: {'beaten' if beats(c, tolerance) else 'NOT beaten'}")
+
+    lines = [line("against the raw records", references["raw"])]
+    if references["baseline"] is not None:
+        lines.append(line(f"against the best baseline dictionary ({references['baseline']})",
+                          references["versus_baseline"]))
+    return lines
 
 
 def compare_evaluations(

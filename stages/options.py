@@ -365,7 +365,12 @@ class GateOptions:
     metric: str = _option("accuracy", choices=SCORES, help="score compared by the promotion gate")
     tolerance: float = _option(0.01, help="promote unless the candidate scores worse than the "
                                           "promoted one by more than this, or its interval "
-                                          "reaches below it")
+                                          "reaches below it; the features must also score "
+                                          "higher than the raw records with an interval "
+                                          "reaching no lower than this")
+    beat_baselines: bool = _option(False, help="promote only when the features also beat the "
+                                               "best dictionary baseline (random patches, PCA), "
+                                               "not only the raw records")
     fail_on_regression: bool = _option(False, decides=False,
                                        help="end a regressed run in a Failed state "
                                             "(default: Completed, named Regression)")

@@ -17,9 +17,16 @@ from typing import Any, Callable
 from .progress import _progress
 from .reports import _describe_serve
 
-#: The demo's train and pool options (the rest are the declared defaults).
-DEMO_TRAIN = dict(n_atoms=128, patch_size=64, stride=32, sample_patches=20_000)
-DEMO_POOL = dict(regions=2)
+#: The demo's train and pool options (the rest are the declared defaults). Measured on the
+#: demo's 4000 records (seed 0, 5-fold accuracy): with one pass, 5 nonzeros and 2 regions the
+#: learned dictionary scored 0.867 against 0.930 for the PCA dictionary baseline; with five
+#: passes over the sample, 3 nonzeros and 4 regions (the shape rules' count for signals) it
+#: scores 0.937 against PCA's 0.910 (difference +0.028, 95% interval [+0.017, +0.037]).
+DEMO_TRAIN = dict(n_atoms=128, patch_size=64, stride=32, sample_patches=20_000,
+                  coder_options={"n_nonzero": 3}, learner_options={"n_passes": 5})
+DEMO_POOL = dict(regions=4)
+#: The demo's gate also asks the features to beat the best dictionary baseline.
+DEMO_GATE = dict(beat_baselines=True)
 
 
 def _key_values(pairs: list[str]) -> dict:
@@ -94,13 +101,14 @@ def _nightly_groups(args: argparse.Namespace) -> dict:
     from atomline.stages.options import (DriftOptions, EncodeOptions, GateOptions, PoolOptions,
                                          TrainOptions)
 
+    from .parser import options_from_args
+
     return dict(
         labels=args.labels, train=TrainOptions(**_train_params(args)),
         encode=EncodeOptions(on_bad_chunk=args.on_bad_chunk),
         pool=PoolOptions(**_pool_params(args), on_bad_chunk=args.on_bad_chunk),
         evaluate=_evaluate_options(args, seed=args.seed), report=_report_options(args),
-        gate=GateOptions(metric=args.metric, tolerance=args.tolerance,
-                         fail_on_regression=args.fail_on_regression, retrain=args.retrain),
+        gate=options_from_args(GateOptions, args),
         drift=DriftOptions(retrain_on_drift=args.retrain_on_drift, drift_since=args.drift_since,
                            drift_threshold=args.drift_threshold),
         runner=_runner(args), break_lease=args.break_lease)
@@ -351,6 +359,7 @@ def _until_interrupted(serve: Callable[..., Any], *deployments: Any) -> None:
 
 
 def _run_history(args):
+    from atomline.stages.gate import best_baseline
     from atomline.stages.workspace import Workspace
 
     ws = Workspace.open(args.workspace)
@@ -359,7 +368,7 @@ def _run_history(args):
     for e in ws.evaluations():
         if args.name and e["records"] != args.name:
             continue
-        m = e["metrics"]
+        m, best = e["metrics"], best_baseline(e, "accuracy")
         decision = decided.get(e["run_id"], {})
         rows.append({
             "run_id": e["run_id"], "created": e["created"], "records": e["records"], "tag": e.get("tag", ""),
@@ -368,6 +377,7 @@ def _run_history(args):
             "n_rows": e.get("n_rows"), "accuracy": m["features"]["accuracy"],
             "macro_f1": m["features"]["macro_f1"],
             "raw_accuracy": m.get("raw", {}).get("accuracy"),
+            "baseline": best, "baseline_accuracy": m[best]["accuracy"] if best else None,
             "outcome": decision.get("outcome"),
         })
     return {"workspace": ws.url, "promoted": ws.promoted, "evaluations": rows, "decisions": ws.decisions()}
@@ -397,7 +407,8 @@ def _run_show(args):
 def _run_demo(args):
     from atomline.flows import nightly_flow
     from atomline.flows.demo import CLASS_NAMES, vibration_records
-    from atomline.stages.options import EvaluateOptions, PoolOptions, ReportOptions, TrainOptions
+    from atomline.stages.options import (EvaluateOptions, GateOptions, PoolOptions, ReportOptions,
+                                         TrainOptions)
     from atomline.stages.workspace import Workspace
 
     started = time.perf_counter()
@@ -410,7 +421,8 @@ def _run_demo(args):
         report = _with_runner(nightly_flow, args)(
             args.directory, "vibration", train=TrainOptions(**DEMO_TRAIN, seed=args.seed),
             pool=PoolOptions(**DEMO_POOL), evaluate=EvaluateOptions(seed=args.seed),
-            report=ReportOptions(class_names=CLASS_NAMES), runner=_runner(args))
+            report=ReportOptions(class_names=CLASS_NAMES), gate=GateOptions(**DEMO_GATE),
+            runner=_runner(args))
     dictionary = ws.load_dictionary(report["candidate_id"])
     report["dictionary"] = {k: dictionary.attrs[k] for k in ("n_atoms", "n_features", "method", "coder",
                                                              "coder_options", "geometry")}

@@ -221,22 +221,15 @@ def _evaluation_options(sp: argparse.ArgumentParser) -> None:
 
 
 def _nightly_options(sp: argparse.ArgumentParser) -> None:
+    from atomline.stages.options import GateOptions
+
     _train_options(sp)
     _pool_options(sp)
     _evaluation_options(sp)
-    sp.add_argument("--metric", choices=("accuracy", "balanced_accuracy", "macro_f1"), default="accuracy",
-                    help="score compared by the promotion gate (default: %(default)s)")
-    sp.add_argument("--tolerance", type=float, default=0.01,
-                    help="promote unless the candidate scores worse than the promoted one by more "
-                         "than this, or its interval reaches below it (default: %(default)s)")
-    sp.add_argument("--fail-on-regression", action="store_true",
-                    help="end a regressed run in a Failed state (default: Completed, named Regression)")
+    add_option_flags(sp, GateOptions)  # --metric, --tolerance, --beat-baselines, --fail-on-regression, --retrain
     sp.add_argument("--retrain-on-drift", action="store_true",
                     help="retrain only when rows from --drift-since on drifted from the earlier ones")
     sp.add_argument("--drift-since", type=int, help="first new row for the drift check")
-    sp.add_argument("--retrain", choices=("always", "if-missing", "never"), default="always",
-                    help="always: train a candidate every run; if-missing/never: keep the promoted "
-                         "dictionary and encode only records it has not covered yet (default: %(default)s)")
     sp.add_argument("--drift-threshold", type=float, default=0.2,
                     help="relative change of reconstruction error or nonzeros that counts as drift (default: %(default)s)")
     _fault_options(sp)

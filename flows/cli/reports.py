@@ -16,7 +16,7 @@ def _describe_stage(r: dict) -> str:
 
 
 def _describe_evaluation(r: dict) -> str:
-    from atomline.flows.artifacts import score_table
+    from atomline.flows.artifacts import baseline_summary, score_table
 
     lines = [f"evaluation {r['run_id']} of dictionary {r['dict_id']} "
              f"({r['n_rows']} labelled rows, {r['folds']}-fold cross-validation)"]
@@ -24,6 +24,8 @@ def _describe_evaluation(r: dict) -> str:
                ("balanced_accuracy", "balanced", ".3f"), ("macro_f1", "macro-F1", ".3f"),
                ("features_minus_set", "features - set", "+.3f"), ("interval_95", "95% interval", "")]
     lines += ["  " + line for line in _table(score_table(r), columns).splitlines()]
+    if baseline_summary(r):
+        lines.append("  " + baseline_summary(r))
     if r.get("pictures"):
         lines.append(f"  pictures: {', '.join(r['pictures'])}")
     return "\n".join(lines)
@@ -31,6 +33,7 @@ def _describe_evaluation(r: dict) -> str:
 
 def _describe_nightly(r: dict) -> str:
     from atomline.flows import OUTCOMES
+    from atomline.stages.gate import describe_references
 
     state = r.get("state", {})
     lines = [f"nightly outcome: {r['outcome'].upper()} — {OUTCOMES[r['outcome']]}"
@@ -43,6 +46,9 @@ def _describe_nightly(r: dict) -> str:
                      f"{100 * d['nonzeros_change']:+.1f}% (threshold {100 * d['threshold']:.0f}%)")
     if r.get("candidate"):
         lines.append(_describe_evaluation(r["candidate"]))
+    if r.get("references"):
+        lines += ["  " + line for line in describe_references(r["references"], r["metric"],
+                                                              r["tolerance"])]
     if r.get("gate"):
         g = r["gate"]
         lines.append(f"  gate on {r['metric']}: candidate {g['a']:.3f} vs promoted {g['b']:.3f}, "
@@ -56,10 +62,13 @@ def _describe_nightly(r: dict) -> str:
 
 
 def _describe_demo(r: dict) -> str:
+    from atomline.stages.gate import best_baseline
+
     d, cand, enc = r["dictionary"], r["candidate"], r["encode"]
     patches = enc["records"] * _patches_per_record(d["geometry"])
     rate = enc.get("records_per_second")
-    gain = 100 * (cand["features"]["accuracy"] - cand["raw"]["accuracy"])
+    best = best_baseline(cand, "accuracy")
+    versus = cand["versus"][best]["accuracy"]
     return "\n".join([
         "atomline demo — synthetic vibration records (invented data; see the README)",
         f"  dictionary   {r['candidate_id']}: {d['n_atoms']} atoms of {d['n_features']} samples, "
@@ -67,13 +76,17 @@ def _describe_demo(r: dict) -> str:
         f"  encoded      {enc['records']} records ({patches:,} patches) in {enc['seconds']:.1f} s"
         + (f" — {rate:,.0f} records/s" if rate else "") + f"; {enc['skipped']} chunks already done",
         f"  classes      {', '.join(r['classes'])}",
-        f"  accuracy     raw samples {cand['raw']['accuracy']:.3f}  |  sparse features "
-        f"{cand['features']['accuracy']:.3f}  ({gain:+.1f} points, {cand['n_rows']} records, "
-        f"{cand['folds']}-fold)",
+        f"  accuracy     sparse features {cand['features']['accuracy']:.3f} against the best "
+        f"baseline dictionary ({best}) {cand[best]['accuracy']:.3f}: "
+        f"{100 * versus['difference']:+.1f} points, 95% interval [{100 * versus['low']:+.1f}, "
+        f"{100 * versus['high']:+.1f}] ({cand['n_rows']} records, {cand['folds']}-fold)",
+        f"               raw samples {cand['raw']['accuracy']:.3f}",
         f"  outcome      {r['outcome']}; promoted dictionary: {r['promoted_id']}",
         f"  outputs      {r['workspace']}  (atomline show {r['workspace']})",
         f"  total time   {r['seconds']:.1f} s",
-        "  This is a screening aid for data work, not a maintenance or safety decision.",
+        "  This is a screening aid for data work, not a maintenance or safety decision: the "
+        "scores say how well\n  features separate invented classes, not whether any machine "
+        "needs attention.",
     ])
 
 
@@ -122,7 +135,8 @@ def _describe_history(r: dict) -> str:
     columns = [("created", "created", ""), ("records", "records", ""), ("tag", "tag", ""),
                ("dict_id", "dictionary", ""), ("coder", "coder", ""), ("n_rows", "rows", "d"),
                ("accuracy", "accuracy", ".3f"), ("macro_f1", "macro-F1", ".3f"),
-               ("raw_accuracy", "raw", ".3f"), ("outcome", "gate", "")]
+               ("raw_accuracy", "raw", ".3f"), ("baseline_accuracy", "best baseline", ".3f"),
+               ("baseline", "baseline dictionary", ""), ("outcome", "gate", "")]
     return _table(r["evaluations"], columns) + f"\npromoted dictionary: {r['promoted']}"
 
 

@@ -25,7 +25,8 @@ OTHER = {
     "evaluate": dict(split="time", test_records="vib", test_share=0.3, folds=3, classifier="linear-svm", C=0.5, max_rows=500, seed=3,
                      baselines=("raw",), learning_curve=(0.5,), n_boot=100, on_bad_chunk="skip"),
     "report": dict(pictures=False, class_names=("a", "b")),
-    "gate": dict(metric="macro_f1", tolerance=0.05, fail_on_regression=True, retrain="if-missing"),
+    "gate": dict(metric="macro_f1", tolerance=0.05, beat_baselines=True, fail_on_regression=True,
+                 retrain="if-missing"),
     "drift": dict(retrain_on_drift=True, drift_since=10, drift_threshold=0.5),
     "runner": dict(runner="processes", workers=1, batches_per_worker=2,
                    dask_options={"local_directory": "/tmp"}, address="tcp://scheduler:8786"),
@@ -36,7 +37,7 @@ WITH = {("runner", "address"): {"runner": "dask"},
 #: What the key hashed before the flows took option objects (their flat parameters then),
 #: by group: the same fields count now. The encode group's coder and coder options are new
 #: to the nightly flow (it always encoded with the dictionary's own coder) and count, as
-#: they change the features.
+#: they change the features; so does the gate's ``beat_baselines`` (it changes the outcome).
 DECIDING_BEFORE = {
     "train": {"n_atoms", "patch_size", "stride", "method", "coder", "coder_options",
               "learner_options", "preprocessing", "sample_patches", "seed"},
@@ -47,7 +48,7 @@ DECIDING_BEFORE = {
     "report": set(), "gate": {"metric", "tolerance", "retrain"},
     "drift": {"retrain_on_drift", "drift_since", "drift_threshold"}, "runner": set(),
 }
-NEW_TO_NIGHTLY = {("encode", "coder"), ("encode", "coder_options")}
+NEW_TO_NIGHTLY = {("encode", "coder"), ("encode", "coder_options"), ("gate", "beat_baselines")}
 
 
 def _groups() -> dict:

@@ -387,3 +387,44 @@ def test_the_gate_reads_the_named_metric():
                                    beat_baselines=False)["outcome"] is None
     assert gate.against_references(evaluation, metric="balanced_accuracy", tolerance=0.01,
                                    beat_baselines=False)["outcome"] == "below_raw"
+
+
+def test_the_reference_lines_name_raw_and_the_best_baseline():
+    evaluation = _versus(Y64, _wrong_on(Y64, range(4)), raw=_wrong_on(Y64, range(16)),
+                         random_patches=_wrong_on(Y64, range(20)), pca=_wrong_on(Y64, range(2)))
+    refs = gate.against_references(evaluation, metric="accuracy", tolerance=0.01, beat_baselines=False)
+    assert refs["outcome"] is None  # the baseline does better, but was not asked for
+    raw_line, baseline_line = gate.describe_references(refs, "accuracy", 0.01)
+    # 60/64 against 48/64 and 62/64: the numbers a reader checks by hand.
+    assert "features 0.938 vs 0.750, difference +0.188" in raw_line and raw_line.endswith(": beaten")
+    assert "(pca)" in baseline_line and "vs 0.969, difference -0.031" in baseline_line
+    assert baseline_line.endswith("NOT beaten")
+
+
+@pytest.mark.parametrize("outcome, refused, final", [
+    ("first", "below_raw", "below_raw"), ("promoted", "below_raw", "below_raw"),
+    ("first", "below_baseline", "below_baseline"), ("first", None, "first"),
+    ("promoted", None, "promoted"),
+    # A regression stays one (its alert fires), and what is not promoted anyway stands.
+    ("regression", "below_raw", "regression"), ("inconclusive", "below_baseline", "inconclusive"),
+    ("unchanged", "below_raw", "unchanged")])
+def test_references_only_stop_a_promotion(outcome, refused, final):
+    assert gate.with_references(outcome, {"outcome": refused}) == final
+
+
+def test_a_first_candidate_below_raw_is_recorded_and_nothing_is_promoted(candidate):
+    # The records differ by class only in their mean; patches lose their mean before coding
+    # (the default preprocessing), so the features cannot beat a classifier on the raw records.
+    ws, dict_id, _ = candidate
+    ev = evaluate.evaluate_features(ws, "vib", dict_id, EvaluateOptions(
+        folds=2, baselines=("raw",), learning_curve=(), n_boot=200))
+    assert ev["raw"]["accuracy"] > 0.9 > ev["features"]["accuracy"]
+    references = gate.against_references(ev, metric="accuracy", tolerance=0.01, beat_baselines=False)
+    assert references["outcome"] == "below_raw"
+    report = {"outcome": gate.with_references("first", references), "candidate_id": dict_id,
+              "previous_id": None, "metric": "accuracy", "tolerance": 0.01, "gate": None,
+              "drift": None, "references": references, "candidate": ev, "promoted": None}
+    out = gate.record_decision(ws, "vib", report, run_key="k-below", recorded=None)
+    assert out["outcome"] == "below_raw" and out["promoted_id"] is None and ws.promoted is None
+    decision = ws.decisions()[-1]
+    assert decision["promoted"] is False and decision["references"]["outcome"] == "below_raw"

@@ -108,6 +108,7 @@ def test_deciding_fields_leave_out_what_cannot_change_a_decision():
     assert opts.deciding(ReportOptions()) == {}
     assert opts.deciding(RunnerOptions(workers=7)) == {}
     assert opts.deciding(GateOptions(tolerance=0.05)) == {"metric": "accuracy", "tolerance": 0.05,
+                                                          "beat_baselines": False,
                                                           "retrain": "always"}
     assert opts.deciding(EvaluateOptions())["learning_curve"] == list(opts.DEFAULT_CURVE)
 
