@@ -40,9 +40,10 @@ from .errors import InputError, problem
 from .kernels import coding, learning
 from .kernels._records import keyword_options, refuse_unknown_options
 from .kernels.scoring import SCORES
+from .kernels.search import AXES
 
 __all__ = ["TrainOptions", "EncodeOptions", "PoolOptions", "EvaluateOptions", "ReportOptions",
-           "GateOptions", "DriftOptions", "RunnerOptions", "OPTION_GROUPS", "option_help",
+           "GateOptions", "DriftOptions", "SearchOptions", "RunnerOptions", "OPTION_GROUPS", "option_help",
            "deciding", "CODERS", "LEARNERS", "BAD_CHUNK_CHOICES", "REDUCTIONS", "CLASSIFIERS",
            "BASELINES", "DEFAULT_CURVE", "SPLITS", "RETRAIN", "RUNNERS"]
 
@@ -403,6 +404,41 @@ class DriftOptions:
         _finite("drift_threshold", self.drift_threshold, 0.0, "Use e.g. 0.2.")
 
 
+@dataclass(frozen=True)
+class SearchOptions:
+    """How ``atomline search`` spends its budget over configurations (``stages.search``)."""
+
+    __pydantic_config__ = _SCHEMA
+
+    budget: int = _option(12, help="configurations tried at the first rung (the shape defaults "
+                                   "first, then changes on the searched axes)")
+    eta: int = _option(3, flag="--reduction",
+                       help="reduction factor: a rung keeps the best 1/eta of its configurations "
+                            "and the next rung gives each eta times the rows")
+    seed: int = _option(0, help="seed of the rows, folds, changes tried and learners")
+    axes: tuple[str, ...] = _option(tuple(AXES), choices=tuple(AXES),
+                                    help="what the search varies around the shape defaults")
+    min_rows: int = _option(150, help="rows of a first-rung trial at least")
+    max_rows: int = _option(2_000, help="labelled rows of the last rung at most (stratified sample)")
+    folds: int = _option(3, help="stratified cross-validation folds of every trial")
+
+    def __post_init__(self) -> None:
+        _set(self, axes=tuple(self.axes))
+        _positive_int("budget", self.budget, "Try at least one configuration.")
+        _positive_int("eta", self.eta, "Use a reduction factor of 2 or more, e.g. 3.", low=2)
+        _positive_int("seed", self.seed, "Use a seed of 0 or more.", low=0)
+        unknown = sorted(set(self.axes) - set(AXES))
+        if unknown:
+            raise InputError(problem("axes", f"a subset of {tuple(AXES)}", str(unknown),
+                                     "Drop the unknown names."))
+        _positive_int("min_rows", self.min_rows, "Use e.g. 150 rows.")
+        _positive_int("max_rows", self.max_rows, "Use e.g. 2000 rows.")
+        if self.max_rows < self.min_rows:
+            raise InputError(problem("max_rows", f"at least min_rows = {self.min_rows}",
+                                     str(self.max_rows), "Raise max_rows or lower min_rows."))
+        _positive_int("folds", self.folds, "Use e.g. 3 folds.", low=2)
+
+
 def _cores() -> int:
     return os.cpu_count() or 1
 
@@ -446,7 +482,7 @@ class RunnerOptions:
 #: Every group of options, by the name the flows give its parameter.
 OPTION_GROUPS = {"train": TrainOptions, "encode": EncodeOptions, "pool": PoolOptions,
                  "evaluate": EvaluateOptions, "report": ReportOptions, "gate": GateOptions,
-                 "drift": DriftOptions, "runner": RunnerOptions}
+                 "drift": DriftOptions, "search": SearchOptions, "runner": RunnerOptions}
 
 
 def option_help(cls: type, name: str) -> dict:

@@ -6,7 +6,8 @@ Two layers:
   (:data:`SIZE`), no file or workspace access:
   :func:`atoms_png` (waveforms for 1-D atoms, tiles for 2-D), :func:`usage_png`,
   :func:`history_png` (accuracy over retrains), :func:`confusion_png`,
-  :func:`curve_png` (learning curve);
+  :func:`curve_png` (learning curve), :func:`search_png` (a search's trials, accuracy
+  against cost);
 * :func:`render_report` — the stage that reads an evaluation from the workspace, renders
   all of them and stores them under ``reports/<run-id>/`` (see
   ``Workspace.save_picture``).
@@ -30,7 +31,8 @@ from .kernels.prep import PatchGeometry  # noqa: E402
 from .workspace import Workspace, iter_row_chunks  # noqa: E402
 
 __all__ = ["SIZE", "atoms_png", "usage_png", "history_png", "history_series", "confusion_png",
-           "curve_png", "curve_series", "atom_usage", "render_report", "history_points", "PICTURES"]
+           "curve_png", "curve_series", "search_png", "atom_usage", "render_report",
+           "history_points", "PICTURES"]
 
 #: Pixel size (width, height) of every picture.
 SIZE = (960, 720)
@@ -319,6 +321,40 @@ def curve_png(curve: dict, title: str = "learning curve", baseline: str | None =
 
 
 # ---------------------------------------------------------------------------- stage
+def search_png(trials: list[dict], title: str = "search: accuracy against cost") -> bytes:
+    """Every trial of a search: accuracy against seconds, one colour per rung, the raw
+    records' accuracy on the same rows as a hollow mark beside each rung.
+
+    Parameters
+    ----------
+    trials : list of dict
+        Each with ``rung`` (int), ``score`` and ``raw`` (float, accuracy), ``seconds``
+        (float) and ``rows`` (int); failed trials (``score < 0``) are left out.
+    title : str
+
+    Returns
+    -------
+    bytes
+        PNG of :data:`SIZE` pixels.
+    """
+    fig = _figure()
+    ax = fig.add_subplot()
+    shown = [t for t in trials if t["score"] >= 0]
+    for rung in sorted({t["rung"] for t in shown}):
+        at = [t for t in shown if t["rung"] == rung]
+        ax.scatter([t["seconds"] for t in at], [t["score"] for t in at], s=30,
+                   label=f"rung {rung} ({at[0]['rows']} rows)")
+        ax.axhline(at[0]["raw"], ls="--", lw=0.8, color=f"C{rung}")
+    ax.set_xscale("log")
+    ax.set_xlabel("seconds per trial")
+    ax.set_ylabel("accuracy (out-of-fold); dashed: raw records on the same rows")
+    ax.set_ylim(0, 1.02)
+    ax.set_title(title)
+    if shown:
+        ax.legend(loc="lower right")
+    return _png(fig)
+
+
 def atom_usage(workspace: Workspace | str, dict_id: str, records: str) -> np.ndarray:
     """Nonzero coefficients per atom over all encoded chunks, read chunk by chunk.
 

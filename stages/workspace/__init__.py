@@ -11,6 +11,8 @@ This is the only module that knows the layout::
     features/<dict-id>/<name>/values (n, F) float32, done (n_chunks,) uint8
     evaluations/<run-id>/     one group per evaluation (append-only)
     decisions/<id>/           one group per promotion-gate decision (append-only, attrs)
+    trials/<id>/              one group per search trial (append-only, attrs; trials.py)
+    recipes/<id>/             one group per stored recipe (append-only, attrs; trials.py)
     reports/<run-id>/<name>   pictures: uint8 arrays holding PNG files' bytes
     .leases/<output>.json     write leases of running stages (not Zarr nodes)
 

@@ -378,7 +378,7 @@ class LeasesMixin:
         return holder
 
     def _lease_name(self, output: str) -> str:
-        if output in ("promoted", "evaluations", "decisions"):
+        if output in ("promoted", "evaluations", "decisions", "trials", "recipes"):
             return output
         parts = output.split("/") if isinstance(output, str) else []
         if len(parts) == 2 and parts[0] == "dictionaries":

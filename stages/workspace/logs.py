@@ -138,7 +138,7 @@ class LogsMixin:
         return next((d for d in reversed(self.decisions()) if d.get("run_key") == run_key), None)
 
     def _append_lease(self, log: str) -> _leases.Lease:
-        """The lease of an append-only log (``evaluations`` or ``decisions``).
+        """The lease of an append-only log (``evaluations``, ``decisions``, ``trials``, ``recipes``).
 
         Held only while one entry is written (well under a second), so a second writer
         waits for it a few seconds rather than failing at once.
