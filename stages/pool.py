@@ -19,7 +19,9 @@ from .encode import codes_path
 from .kernels.pooling import check_reduce, n_pooled, pool_codes, region_of_patches
 from .kernels.prep import PatchGeometry
 from .options import PoolOptions
+from .recipes import with_recipe
 from .settings import pool_regions
+from .workspace.trials import recipes
 from .workspace import Workspace, fingerprint_params
 
 __all__ = ["prepare_pool", "pool_chunks", "pool_task", "features_path"]
@@ -48,7 +50,9 @@ def prepare_pool(
     options : PoolOptions
         ``reduce`` ({"max", "mean"}), ``split_sign``, ``regions`` (equal parts per
         spatial axis of the patch grid; ``None``: the records' shape default the dictionary
-        was trained with, within its grid, :func:`~atomline.stages.settings.pool_regions`).
+        was trained with, within its grid, :func:`~atomline.stages.settings.pool_regions`);
+        for a dictionary trained from a recipe, options left at their defaults take the
+        recipe's (:mod:`~atomline.stages.recipes`).
     overwrite : bool
 
     Returns
@@ -57,8 +61,12 @@ def prepare_pool(
         ``{"output", "n_chunks", "pending", "n_features", "skipped_rows", "regions",
         "regions_reason"}``
     """
-    reduce, split_sign, regions = options.reduce, options.split_sign, options.regions
     ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    # A dictionary trained from a recipe is pooled the recipe's way, below the options given.
+    made_from = ws.load_dictionary(dict_id).attrs.get("search_recipe")
+    if made_from is not None:
+        options = with_recipe(options, next(r for r in recipes(ws) if r["id"] == made_from))
+    reduce, split_sign, regions = options.reduce, options.split_sign, options.regions
     codes = ws.output(codes_path(dict_id, records))
     cattrs = codes.attrs
     geometry = PatchGeometry.from_attrs(cattrs["geometry"])

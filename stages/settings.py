@@ -29,6 +29,7 @@ from .kernels._records import keyword_options
 from .kernels.learning import takes_coder
 from .kernels.shape_rules import check_settings, geometry_defaults
 from .options import TrainOptions
+from .recipes import recipe_for, with_recipe
 
 __all__ = ["resolve", "resolve_shape", "pool_regions", "SHAPE_DEFAULTED"]
 
@@ -60,7 +61,9 @@ def resolve(ws: Any, records: str, options: TrainOptions) -> tuple[TrainOptions,
     chosen : dict
         ``kind`` ("vectors", "signals" or "images"), ``regions`` (the pooling default for
         this geometry, list of int per spatial axis) and ``reasons`` (one sentence per value,
-        for users; a given value's says it was given), plain JSON.
+        for users; a given value's says it was given), plain JSON; with a recipe stored
+        for these records (:mod:`~atomline.stages.recipes`, used for the values not
+        given), ``recipe`` (its id) and the recipe's ``regions``.
 
     Raises
     ------
@@ -68,8 +71,18 @@ def resolve(ws: Any, records: str, options: TrainOptions) -> tuple[TrainOptions,
         A configuration that cannot work, naming the value to change and what to.
     """
     arr = ws.records(records)
-    return resolve_shape(tuple(arr.shape[1:]), int(arr.shape[0]), options,
-                         vectors=ws.records_kind(records) == "vectors")
+    # A search's stored winner sits between the options given and the shape defaults.
+    applied = recipe_for(ws, records)
+    resolved, chosen = resolve_shape(tuple(arr.shape[1:]), int(arr.shape[0]),
+                                     with_recipe(options, applied),
+                                     vectors=ws.records_kind(records) == "vectors")
+    if applied is not None:
+        chosen["recipe"] = applied["id"]
+        chosen["regions"] = list(applied["configuration"]["regions"])
+        chosen["reasons"]["recipe"] = (f"Values not given come from the recipe "
+                                       f"{applied['name']!r} (search "
+                                       f"{applied['source']['search_id']}).")
+    return resolved, chosen
 
 
 def resolve_shape(record_shape: tuple[int, ...], n_records: int, options: TrainOptions, *,

@@ -114,6 +114,7 @@ def train_dictionary(
             params=learned.params,
             diagnostics=learned.diagnostics,
             settings=chosen,
+            **({"search_recipe": chosen["recipe"]} if "recipe" in chosen else {}),
         )
         held.check()  # a run that lost its lease stores nothing
         stored = ws.save_dictionary(dict_id, learned.atoms, attrs, learned.preprocessing.arrays())

@@ -51,3 +51,25 @@ def test_search_flow_maps_each_trial_and_publishes_the_ranked_table(tmp_path):
     assert "not a safety or maintenance decision" in mine[0].description
     assert result["picture"] in [p["path"] for p in ws.pictures()]
     assert current_recipe(ws, name)["configuration"] == result["winner"]
+
+
+def test_nightly_after_a_search_trains_and_pools_with_the_recipe(tmp_path):
+    from atomline.flows import nightly_flow
+
+    # Without the recipe the default nightly (whole-record patch, 4 regions) cannot pool
+    # 8×8 images; after the search it uses the recipe's patch, atoms and regions.
+    X, y = load_digits(return_X_y=True)
+    url = str(tmp_path / "ws")
+    ws = Workspace.open(url, create=True)
+    ws.add_records("digits", X[:300].reshape(-1, 8, 8).astype(np.float32), chunk_rows=100)
+    ws.add_labels("digits", y[:300])
+    found = search_flow(url, "digits", search=SMALL, recipe="digits-best")
+    winner = found["winner"]
+    report = nightly_flow(url, "digits", sample_patches=3000, folds=3, n_boot=200,
+                          learning_curve=[], pictures=False)
+    dict_id = report["candidate"]["dict_id"]
+    attrs = ws.load_dictionary(dict_id).attrs
+    assert attrs["search_recipe"] == found["recipe_id"]
+    assert (attrs["n_atoms"], attrs["geometry"]["size"]) == (winner["n_atoms"], winner["patch_size"])
+    pooled = ws.output(f"features/{dict_id}/digits").attrs["params"]
+    assert (pooled["regions"], pooled["reduce"]) == (winner["regions"], winner["reduce"])

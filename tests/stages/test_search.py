@@ -145,3 +145,29 @@ def test_the_digits_winner_beats_the_raw_classifier_by_cross_validation(tmp_path
                                    SearchOptions(budget=6, eta=3, min_rows=150, max_rows=900))
     checked = score_trial(result["winner"], X, y, folds=5, seed=1)
     assert checked["score"] > checked["raw"], (result["ranked"][0]["label"], checked)
+
+
+def test_train_and_pool_use_the_recipe_below_the_options_given(digits_ws):
+    from atomline.stages.encode import encode_chunks, prepare_encode
+    from atomline.stages.options import PoolOptions, TrainOptions
+    from atomline.stages.pool import prepare_pool
+    from atomline.stages.train import train_dictionary
+
+    result = search_configurations(digits_ws, "digits", "digits", SMALL)
+    recipe_id = store_recipe(digits_ws, result, "digits-best")
+    winner = result["winner"]
+    made = train_dictionary(digits_ws, "digits", TrainOptions(sample_patches=2000))
+    attrs = digits_ws.load_dictionary(made["dict_id"]).attrs
+    assert attrs["search_recipe"] == recipe_id
+    assert attrs["n_atoms"] == winner["n_atoms"]
+    assert attrs["geometry"]["size"] == winner["patch_size"]
+    assert attrs["geometry"]["stride"] == winner["stride"]
+    assert attrs["sample_patches"] == 2000  # given: wins over the recipe
+    explicit = train_dictionary(digits_ws, "digits", TrainOptions(n_atoms=winner["n_atoms"] + 3,
+                                                                  sample_patches=2000))
+    assert digits_ws.load_dictionary(explicit["dict_id"]).attrs["n_atoms"] == winner["n_atoms"] + 3
+    todo = prepare_encode(digits_ws, "digits", made["dict_id"])
+    encode_chunks(digits_ws, "digits", made["dict_id"], todo["pending"])
+    pooled = prepare_pool(digits_ws, "digits", made["dict_id"], PoolOptions())
+    assert digits_ws.output(pooled["output"]).attrs["params"]["regions"] == winner["regions"]
+    assert digits_ws.output(pooled["output"]).attrs["params"]["reduce"] == winner["reduce"]
