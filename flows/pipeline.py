@@ -47,7 +47,7 @@ from atomline.stages.options import (BASELINES, RETRAIN, DriftOptions, EncodeOpt
                                      TrainOptions, deciding)
 from atomline.stages.pool import features_path, pool_task, prepare_pool
 from atomline.stages.train import train_task
-from atomline.stages.workspace import Workspace
+from atomline.stages.workspace import Workspace, open_workspace
 
 from .artifacts import ChunkProgress, artifact_key, publish_evaluation
 from .runners import blas_threads, check_reachable, plan_batches, task_runner
@@ -102,7 +102,7 @@ def encode_flow(workspace: str, records: str, dict_id: str | None = None,
     logger = get_run_logger()
     check_reachable(workspace)
     dict_id = dict_id or _promoted(workspace)
-    ws = Workspace.open(workspace)
+    ws = open_workspace(workspace)
     with ws.lease(codes_path(dict_id, records), run=_run_name(), break_existing=break_lease) as held:
         prepared = prepare_encode(ws, records, dict_id, encode, overwrite=overwrite)
         batches = plan_batches(prepared["pending"], runner.workers, runner.batches_per_worker)
@@ -135,7 +135,7 @@ def pool_flow(workspace: str, records: str, dict_id: str | None = None,
     ``pool.on_bad_chunk`` as for ``encode_flow``, for codes chunks that cannot be decoded."""
     check_reachable(workspace)
     dict_id = dict_id or _promoted(workspace)
-    ws = Workspace.open(workspace)
+    ws = open_workspace(workspace)
     with ws.lease(features_path(dict_id, records), run=_run_name(), break_existing=break_lease) as held:
         prepared = prepare_pool(ws, records, dict_id, pool, overwrite=overwrite)
         start = time.perf_counter()
@@ -166,7 +166,7 @@ def evaluate_flow(workspace: str, records: str, dict_id: str | None = None, labe
     manifest = evaluate_task(workspace, records, dict_id, evaluate, labels=labels, tag=tag)
     paths = render_task(workspace, manifest["run_id"], report.class_names) if report.pictures else []
     manifest["pictures"] = paths
-    publish_evaluation(Workspace.open(workspace), manifest, records,
+    publish_evaluation(open_workspace(workspace), manifest, records,
                        title=f"atomline evaluation of {records}", picture_paths=paths)
     _log_scores(get_run_logger(), manifest)
     return manifest
@@ -255,7 +255,7 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None,
     """
     logger = get_run_logger()
     check_reachable(workspace)
-    ws = Workspace.open(workspace)
+    ws = open_workspace(workspace)
     run_key = nightly_run_key(ws, records, nightly_key_options(
         labels, train=train, encode=encode, pool=pool, evaluate=evaluate, report=report, gate=gate,
         drift=drift, runner=runner))
@@ -335,7 +335,7 @@ def _finish(workspace: str, records: str, report: dict, fail_on_regression: bool
     """Record the decision and promote when due (``gate.record_decision``), publish
     artifacts, and end in a named state."""
     logger = get_run_logger()
-    ws = Workspace.open(workspace)
+    ws = open_workspace(workspace)
     cand = report["candidate"]
     report.update(record_decision(ws, records, report, run_key=run_key, recorded=recorded))
     outcome = report["outcome"]
@@ -395,5 +395,5 @@ def _record_skips(ws: Workspace, path: str, records: str) -> dict:
 
 
 def _promoted(workspace: str) -> str:
-    return promoted_or_named(Workspace.open(workspace), None)
+    return promoted_or_named(open_workspace(workspace), None)
 

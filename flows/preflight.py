@@ -27,7 +27,7 @@ from atomline.stages.kernels.learning import (TRAIN_OWN_OPTIONS, check_learner, 
 from atomline.stages.kernels.prep import PatchGeometry
 from atomline.stages.options import TrainOptions
 from atomline.stages.settings import resolve
-from atomline.stages.workspace import Workspace
+from atomline.stages.workspace import Workspace, open_workspace
 
 __all__ = ["check_runner", "check_train", "check_encode", "check_pool", "check_evaluate",
            "check_nightly", "check_cron", "check_timezone"]
@@ -73,9 +73,9 @@ def check_encode(workspace: str, records: str, *, dict_id: str | None, coder: st
     ws = _open(workspace)
     arr = ws.records(records)
     dict_id = promoted_or_named(ws, dict_id)
-    attrs = ws.load_dictionary(dict_id).attrs
-    check_record_shape(dict_id, PatchGeometry.from_attrs(attrs["geometry"]).record_shape, records,
-                       arr.shape[1:])
+    stored = ws.load_dictionary(dict_id)
+    attrs = stored.attrs
+    check_record_shape(dict_id, stored.geometry().record_shape, records, arr.shape[1:])
     coder, options = resolve_coder(attrs, coder, coder_options)
     _check_coder(coder, attrs["n_atoms"], options)
 
@@ -86,8 +86,7 @@ def check_pool(workspace: str, records: str, *, dict_id: str | None, regions: An
     ws.records(records)
     dict_id = promoted_or_named(ws, dict_id)
     if regions is not None:  # otherwise chosen within the grid
-        check_regions(PatchGeometry.from_attrs(ws.load_dictionary(dict_id).attrs["geometry"]).grid,
-                      _tuple(regions))
+        check_regions(ws.load_dictionary(dict_id).geometry().grid, _tuple(regions))
 
 
 def check_evaluate(workspace: str, records: str, *, dict_id: str | None, labels: str | None,
@@ -116,7 +115,7 @@ def check_nightly(workspace: str, records: str, *, retrain: str, tolerance: floa
     if retrain == "always" or ws.promoted is None:
         grid = check_train(workspace, records, **train).grid
     else:
-        grid = PatchGeometry.from_attrs(ws.load_dictionary(ws.promoted).attrs["geometry"]).grid
+        grid = ws.load_dictionary(ws.promoted).geometry().grid
     if regions is not None:  # otherwise chosen within the grid
         check_regions(grid, _tuple(regions))
     _check_labels(ws, labels or records, folds)
@@ -152,7 +151,7 @@ def check_timezone(timezone: str) -> None:
 
 
 def _open(workspace: str) -> Workspace:
-    return Workspace.open(workspace)
+    return open_workspace(workspace)
 
 
 def _check_coder(coder: str, n_atoms: int, options: dict) -> None:

@@ -2,7 +2,9 @@
 
 For a range of rows, a seeded sample of their patches
 (:func:`~atomline.stages.kernels.features.sample_patches`, as the train stage draws its
-sample) is normalised like the training patches and coded with the dictionary's coder; two numbers describe how well they fit:
+sample) is normalised like the training patches and coded with the coder the records' codes were made
+with (``codes/<dict-id>/<records>``), or the dictionary's own where none exist yet; two
+numbers describe how well they fit:
 
 * ``error`` — the mean relative reconstruction error ``‖x − Wᵀz‖² / ‖x‖²`` over patches
   of non-zero norm;
@@ -20,9 +22,9 @@ import numpy as np
 
 from .errors import InputError, problem
 from .kernels.features import FeatureChain, sample_patches
-from .kernels.prep import Normaliser, PatchGeometry
+from .encode import codes_path, runnable_coder_options
 from .options import DriftOptions
-from .workspace import Workspace
+from .workspace import Workspace, open_workspace
 
 __all__ = ["measure_fit", "compare_drift", "detect_drift"]
 
@@ -47,16 +49,19 @@ def measure_fit(workspace: Workspace | str, records: str, dict_id: str, rows: sl
     dict
         ``{"rows": [start, stop], "patches": int, "error": float, "nonzeros": float}``
     """
-    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    ws = open_workspace(workspace)
     arr = ws.records(records)
     start, stop, step = rows.indices(arr.shape[0])
     if step != 1 or stop <= start:
         raise InputError(problem(f"rows of data/{records}", "a non-empty range with step 1",
                                  f"{start}:{stop}:{step}", "Pass e.g. slice(old_count, None)."))
     stored = ws.load_dictionary(dict_id)
-    chain = FeatureChain(PatchGeometry.from_attrs(stored.attrs["geometry"]), stored.atoms,
-                         stored.attrs["coder"], dict(stored.attrs["coder_options"]),
-                         Normaliser.from_stored(stored.attrs["preprocessing"], stored.arrays))
+    coder, coder_options = stored.coder()
+    if ws.has_output(codes_path(dict_id, records)):  # the codes record the coder they used
+        params = ws.output(codes_path(dict_id, records)).attrs["params"]
+        coder, coder_options = params["coder"], dict(params["coder_options"])
+    chain = FeatureChain(stored.geometry(), stored.atoms, coder,
+                         runnable_coder_options(ws, dict_id, coder, coder_options), stored.normaliser())
     X = chain.normalise(sample_patches(
         np.arange(start, stop), chain.geometry, max_patches, seed, chunk_rows=arr.chunks[0],
         read=lambda c: ws.read_chunk(records, c, arr)))

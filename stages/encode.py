@@ -25,9 +25,8 @@ from threadpoolctl import threadpool_limits
 from .checks import check_record_shape, resolve_coder
 from .kernels.coding import code, code_outputs, code_width
 from .errors import BadChunk, FingerprintMismatch, InputError, problem, retry_if_transient
-from .kernels.prep import Normaliser, PatchGeometry
 from .options import EncodeOptions
-from .workspace import Workspace, fingerprint_params, iter_row_chunks
+from .workspace import Workspace, fingerprint_params, iter_row_chunks, open_workspace
 
 __all__ = ["prepare_encode", "encode_chunks", "encode_task", "codes_path"]
 
@@ -67,13 +66,13 @@ def prepare_encode(
     dict
         ``{"output", "n_chunks", "pending", "coder", "coder_options", "width"}``
     """
-    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    ws = open_workspace(workspace)
     arr = ws.records(records)
     stored = ws.load_dictionary(dict_id)
-    geometry = PatchGeometry.from_attrs(stored.attrs["geometry"])
+    geometry = stored.geometry()
     check_record_shape(dict_id, geometry.record_shape, records, arr.shape[1:])
     coder, coder_options = resolve_coder(stored.attrs, options.coder, options.coder_options)
-    resolved = _resolve_options(ws, dict_id, coder, coder_options)
+    resolved = runnable_coder_options(ws, dict_id, coder, coder_options)
     width = code_width(coder, stored.atoms.shape[0], **resolved)
     P = geometry.patches_per_record
     params = {"coder": coder, "coder_options": coder_options}
@@ -161,8 +160,7 @@ def encode_chunks(
     """
     on_bad_chunk = options.on_bad_chunk  # checked when the options were made
     start = time.perf_counter()
-    ws = (workspace if isinstance(workspace, Workspace)
-          else Workspace.open(workspace, storage_options=storage_options))
+    ws = open_workspace(workspace, storage_options)
     out = ws.output(codes_path(dict_id, records), lease=lease)
     chunks = out.check_chunks(chunks)
     attrs = out.attrs
@@ -172,10 +170,9 @@ def encode_chunks(
         raise FingerprintMismatch(problem(codes_path(dict_id, records),
                                f"dictionary fingerprint {attrs['dictionary_fingerprint']}",
                                stored.fingerprint, "Run prepare_encode with overwrite=True."))
-    geometry = PatchGeometry.from_attrs(attrs["geometry"])
-    normaliser = Normaliser.from_stored(stored.attrs["preprocessing"], stored.arrays)
+    geometry, normaliser = stored.geometry(), stored.normaliser()
     coder = attrs["params"]["coder"]
-    options = _resolve_options(ws, dict_id, coder, dict(attrs["params"]["coder_options"]))
+    options = runnable_coder_options(ws, dict_id, coder, dict(attrs["params"]["coder_options"]))
     atoms = stored.atoms.astype(arr.dtype)
     P = attrs["patches_per_record"]
     width = attrs["width"]
@@ -207,8 +204,9 @@ def encode_chunks(
             "patches": n_records * P, "seconds": time.perf_counter() - start}
 
 
-def _resolve_options(ws: Workspace, dict_id: str, coder: str, options: dict) -> dict:
-    """Options as the coder takes them: a learned encoder is named, then loaded."""
+def runnable_coder_options(ws: Workspace, dict_id: str, coder: str, options: dict) -> dict:
+    """Options as :func:`~atomline.stages.kernels.coding.code` takes them: a learned
+    encoder is named in the stored options, and loaded here."""
     if coder != "learned":
         return options
     from .kernels.coding import LearnedEncoder

@@ -76,10 +76,9 @@ from .kernels.classify import (class_report, cross_predict, curve_points, curve_
                                holdout_split, labelled_rows, make_classifier, scored_positions,
                                stratified_folds, time_split)
 from .kernels.features import FeatureChain, baseline_atoms, row_blocks, sample_patches, take_rows
-from .kernels.prep import Normaliser, PatchGeometry
 from .kernels.scoring import confusion, paired_bootstrap, scores_from_confusion
 from .options import BASELINES, CLASSIFIERS, DEFAULT_CURVE, EncodeOptions, EvaluateOptions, PoolOptions
-from .workspace import Workspace, fingerprint_params, iter_row_chunks
+from .workspace import Workspace, fingerprint_params, iter_row_chunks, open_workspace
 
 __all__ = ["evaluate_features", "evaluate_task", "evaluation_key", "check_test_records",
            "coding_of", "CLASSIFIERS", "BASELINES"]
@@ -149,7 +148,7 @@ def evaluate_features(
     folds, classifier, C, max_rows = options.folds, options.classifier, options.C, options.max_rows
     seed, baselines, learning_curve = options.seed, options.baselines, options.learning_curve
     n_boot, on_bad_chunk, split = options.n_boot, options.on_bad_chunk, options.split
-    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    ws = open_workspace(workspace)
     test_records = options.test_records if split == "test-set" else None
     if test_records is not None:
         check_test_records(ws, records, test_records, dict_id)
@@ -449,8 +448,7 @@ def _dictionary_baseline(ws: Workspace, kind: str, dict_id: str, records: str, r
     stored = ws.load_dictionary(dict_id)
     cattrs = ws.output(codes_path(dict_id, records)).attrs
     pooling = ws.output(features_path(dict_id, records)).attrs["params"]
-    geometry = PatchGeometry.from_attrs(stored.attrs["geometry"])
-    normaliser = Normaliser.from_stored(stored.attrs["preprocessing"], stored.arrays)
+    geometry, normaliser = stored.geometry(), stored.normaliser()
     read = _records_reader(ws, records, arr)
     patches = normaliser.apply(sample_patches(rows, geometry, _BASELINE_SAMPLE, seed,
                                               chunk_rows=arr.chunks[0], read=read))

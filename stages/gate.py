@@ -41,7 +41,7 @@ import numpy as np
 from .checks import check_tolerance
 from .errors import InputError, problem
 from .kernels.scoring import paired_bootstrap
-from .workspace import Workspace, fingerprint_params
+from .workspace import Workspace, fingerprint_params, open_workspace
 
 __all__ = ["OUTCOMES", "STATE_NAMES", "GATE_OUTCOMES", "DICTIONARY_BASELINES", "beats",
            "best_baseline", "required_baselines", "against_references", "describe_references",
@@ -264,7 +264,7 @@ def compare_evaluations(
     dict
         Per score: ``a``, ``b``, ``difference`` (a − b), ``low``, ``high``.
     """
-    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    ws = open_workspace(workspace)
     info = {e["run_id"]: e for e in ws.evaluations() if e["run_id"] in (run_a, run_b)}
     for run in (run_a, run_b):
         if run not in info:
@@ -432,7 +432,7 @@ def record_decision(workspace: Workspace | str, records: str, report: dict, *, r
         ``already_decided`` (only when ``recorded``: its id), and ``promoted_id``, the
         dictionary promoted after the call.
     """
-    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    ws = open_workspace(workspace)
     cand = report["candidate"]
     out: dict = {"outcome": recorded["outcome"] if recorded else report["outcome"]}
     if recorded:

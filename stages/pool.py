@@ -17,12 +17,11 @@ from prefect.cache_policies import NO_CACHE
 from .errors import BadChunk, FingerprintMismatch, InputError, problem, retry_if_transient
 from .encode import codes_path
 from .kernels.pooling import check_reduce, n_pooled, pool_codes, region_of_patches
-from .kernels.prep import PatchGeometry
 from .options import PoolOptions
 from .recipes import with_recipe
 from .settings import pool_regions
 from .workspace.trials import recipes
-from .workspace import Workspace, fingerprint_params
+from .workspace import Workspace, fingerprint_params, open_workspace
 
 __all__ = ["prepare_pool", "pool_chunks", "pool_task", "features_path"]
 
@@ -61,7 +60,7 @@ def prepare_pool(
         ``{"output", "n_chunks", "pending", "n_features", "skipped_rows", "regions",
         "regions_reason"}``
     """
-    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    ws = open_workspace(workspace)
     # A dictionary trained from a recipe is pooled the recipe's way, below the options given.
     made_from = ws.load_dictionary(dict_id).attrs.get("search_recipe")
     if made_from is not None:
@@ -69,9 +68,10 @@ def prepare_pool(
     reduce, split_sign, regions = options.reduce, options.split_sign, options.regions
     codes = ws.output(codes_path(dict_id, records))
     cattrs = codes.attrs
-    geometry = PatchGeometry.from_attrs(cattrs["geometry"])
+    stored = ws.load_dictionary(dict_id)
+    geometry = stored.geometry()  # the dictionary's copy is authoritative
     if regions is None:
-        regions, reason = pool_regions(ws.load_dictionary(dict_id).attrs, geometry.grid)
+        regions, reason = pool_regions(stored.attrs, geometry.grid)
     else:
         reason = f"regions = {regions} was given."
     _, R = region_of_patches(geometry.grid, regions)
@@ -131,8 +131,7 @@ def pool_chunks(
     """
     on_bad_chunk = options.on_bad_chunk  # checked when the options were made
     start = time.perf_counter()
-    ws = (workspace if isinstance(workspace, Workspace)
-          else Workspace.open(workspace, storage_options=storage_options))
+    ws = open_workspace(workspace, storage_options)
     out = ws.output(features_path(dict_id, records), lease=lease)
     chunks = out.check_chunks(chunks)
     codes = ws.output(codes_path(dict_id, records))
@@ -141,7 +140,7 @@ def pool_chunks(
         raise FingerprintMismatch(problem(features_path(dict_id, records),
                                  f"codes with fingerprint {attrs['codes_fingerprint']}",
                                  cattrs["fingerprint"], "Run prepare_pool with overwrite=True."))
-    geometry = PatchGeometry.from_attrs(cattrs["geometry"])
+    geometry = ws.load_dictionary(dict_id).geometry()
     params = attrs["params"]
     region, R = region_of_patches(geometry.grid, params["regions"])
     P, rows_per_chunk = cattrs["patches_per_record"], cattrs["record_chunk_rows"]

@@ -28,7 +28,7 @@ from .encode import codes_path  # noqa: E402
 from .errors import InputError, problem  # noqa: E402
 from .gate import best_baseline  # noqa: E402
 from .kernels.prep import PatchGeometry  # noqa: E402
-from .workspace import Workspace, iter_row_chunks  # noqa: E402
+from .workspace import Workspace, iter_row_chunks, open_workspace  # noqa: E402
 
 __all__ = ["SIZE", "atoms_png", "usage_png", "history_png", "history_series", "confusion_png",
            "curve_png", "curve_series", "search_png", "atom_usage", "render_report",
@@ -362,7 +362,7 @@ def atom_usage(workspace: Workspace | str, dict_id: str, records: str) -> np.nda
     -------
     ndarray of shape (k,), int64
     """
-    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    ws = open_workspace(workspace)
     out = ws.output(codes_path(dict_id, records))
     k = out.attrs["n_atoms"]
     index = out.group["index"]
@@ -391,7 +391,7 @@ def render_report(workspace: Workspace | str, run_id: str,
     list of str
         Workspace paths of the stored pictures.
     """
-    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    ws = open_workspace(workspace)
     evaluations = ws.evaluations()
     ev = next((e for e in evaluations if e["run_id"] == run_id), None)
     if ev is None:
@@ -406,7 +406,7 @@ def render_report(workspace: Workspace | str, run_id: str,
     if not missing:
         return [done[name] for name in wanted]
     stored = ws.load_dictionary(ev["dict_id"])
-    geometry = PatchGeometry.from_attrs(stored.attrs["geometry"])
+    geometry = stored.geometry()
     usage = atom_usage(ws, ev["dict_id"], ev["records"])
     makers = {
         "atoms": lambda: atoms_png(stored.atoms, geometry, np.argsort(-usage, kind="stable"),

@@ -21,7 +21,7 @@ from .kernels.learning import TRAIN_OWN_OPTIONS, check_learner_options, learn, t
 from .kernels.prep import Normaliser, PatchGeometry
 from .options import TrainOptions
 from .settings import resolve
-from .workspace import Workspace, fingerprint_params
+from .workspace import Workspace, fingerprint_params, open_workspace
 
 __all__ = ["train_dictionary", "train_task", "train_encoder", "train_encoder_task"]
 
@@ -63,7 +63,7 @@ def train_dictionary(
         ``settings`` (``kind``, the pooling ``regions`` default and one ``reasons``
         sentence per value chosen from the shape or given).
     """
-    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    ws = open_workspace(workspace)
     arr = ws.records(records)
     options, chosen = resolve(ws, records, options)
     n_atoms, method, coder, seed = options.n_atoms, options.method, options.coder, options.seed
@@ -196,11 +196,10 @@ def train_encoder(
     """
     from .kernels.coding import fit_learned_encoder
 
-    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    ws = open_workspace(workspace)
     arr = ws.records(records)
     stored = ws.load_dictionary(dict_id)
-    geometry = PatchGeometry.from_attrs(stored.attrs["geometry"])
-    normaliser = Normaliser.from_stored(stored.attrs["preprocessing"], stored.arrays)
+    geometry, normaliser = stored.geometry(), stored.normaliser()
     sample = normaliser.apply(_sample(ws, records, arr, geometry, sample_patches, seed))
     encoder = fit_learned_encoder(sample, stored.atoms, target, n_layers, seed=seed,
                                   **(fit_options or {}), **(target_options or {}))

@@ -57,9 +57,9 @@ from .leases import _HELD_LEASES, LeasesMixin
 from .logs import LogsMixin
 from .outputs import Output, OutputsMixin, iter_row_chunks
 from .records import RecordsMixin
-from .store import STORAGE_OPTIONS_ENV, StoreMixin, resolve_storage_options
+from .store import STORAGE_OPTIONS_ENV, StoreMixin, open_workspace, resolve_storage_options
 
-__all__ = ["Workspace", "Output", "StoredDictionary", "LAYOUT_VERSION", "fingerprint_params",
+__all__ = ["Workspace", "open_workspace", "Output", "StoredDictionary", "LAYOUT_VERSION", "fingerprint_params",
            "BAD_CHUNK_CHOICES", "check_bad_chunk_choice",
            "resolve_storage_options", "STORAGE_OPTIONS_ENV"]
 

@@ -9,6 +9,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..kernels.prep import Normaliser, PatchGeometry
 from .inputs import _check_atoms
 from .layout import _DICTIONARY_ATTRS, _DICTIONARY_OPTIONAL, _MARK, _check_name, _now, _package_version, _plain
 from .safety import _check_group_members, require_attrs
@@ -40,6 +41,22 @@ class StoredDictionary:
         """Digest of the atoms and their preprocessing."""
         return self.attrs["fingerprint"]
 
+    def geometry(self) -> PatchGeometry:
+        """How records are cut into patches for these atoms (the dictionary's own copy is
+        the authoritative one; a codes output's ``geometry`` attribute only repeats it)."""
+        return PatchGeometry.from_attrs(self.attrs["geometry"])
+
+    def normaliser(self) -> Normaliser:
+        """The fitted preprocessing that turns patches into rows the atoms fit."""
+        return Normaliser.from_stored(self.attrs["preprocessing"], self.arrays)
+
+    def coder(self) -> tuple[str, dict]:
+        """The coder the atoms were trained with and its options, as ``(name, options)``.
+
+        Codes made by the encode stage record the coder they were made with (their
+        ``params``), which may be another; read that where codes exist.
+        """
+        return self.attrs["coder"], dict(self.attrs["coder_options"])
 
 
 class DictionariesMixin:

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import json
 import os
+import threading
 from typing import Any
 
 import zarr
@@ -89,6 +90,22 @@ class StoreMixin:
         check_mark(root, url)
         return cls(root, url, storage_options)
 
+    def _reread_root(self) -> bool:
+        """Read the root group's metadata again through the open store.
+
+        Zarr keeps a group's attributes in memory from when it was opened, so a workspace
+        kept open would show the promoted pointer as it was then, after another object or
+        process moved it. Returns False, and changes nothing, when the root is gone (a
+        deleted directory, a cleared ``memory://`` store) or is no workspace any more.
+        """
+        try:
+            root = zarr.open_group(store=self.root.store, path=self.root.path or None, mode="r+")
+            check_mark(root, self.url)
+        except (OSError, zarr.errors.GroupNotFoundError, ValueError, TypeError, KeyError, LayoutError):
+            return False
+        self.root = root
+        return True
+
     def _mark(self) -> dict:
         return dict(self.root.attrs[_MARK])
 
@@ -111,6 +128,53 @@ class StoreMixin:
         if path in self.root and not overwrite:
             raise OutputExists(problem(path, "a free name", "an existing entry",
                                        "Pick another name or pass overwrite=True (--overwrite)."))
+
+
+# ---------------------------------------------------------------------- one open per process
+
+#: Workspaces opened by :func:`open_workspace`, by URL and storage options.
+_OPENED: dict[tuple[str, str], Any] = {}
+_OPENED_LOCK = threading.Lock()
+
+
+def open_workspace(workspace: "Workspace | str | os.PathLike",
+                   storage_options: dict | None = None) -> "Workspace":
+    """The workspace a stage or flow works on, opened once per process.
+
+    Every stage takes a workspace or its URL; a URL is opened here, and the same URL with
+    the same storage options gets the same :class:`Workspace` object back in this
+    process (threads included), so a flow's tasks do not each open the store again.
+    Handing it out re-reads the root group's metadata (the promoted pointer may have
+    moved); a root that is gone is opened afresh, which raises
+    :class:`~atomline.stages.errors.NotFound` if nothing is there.
+
+    Parameters
+    ----------
+    workspace : Workspace, str or path
+        An opened workspace (returned as it is) or its URL.
+    storage_options : dict, optional
+        As for :meth:`Workspace.open`; resolved the same way (the environment otherwise).
+
+    Returns
+    -------
+    Workspace
+    """
+    from . import Workspace  # the composed class lives in the package's __init__, which imports this module
+
+    if isinstance(workspace, Workspace):
+        return workspace
+    url = _check_url(os.fspath(workspace), "workspace URL")
+    options = resolve_storage_options(url, storage_options)
+    # Kept in this process's memory only, never written anywhere (the options may hold secrets).
+    key = (url, json.dumps(options, sort_keys=True, default=repr) if options else "")
+    with _OPENED_LOCK:  # one open at a time: two threads asking together share one object
+        ws = _OPENED.get(key)
+        if ws is not None and ws._reread_root():
+            return ws
+        _OPENED.pop(key, None)
+        ws = Workspace.open(url, storage_options=options)
+        _OPENED[key] = ws
+        return ws
 
 
 # ---------------------------------------------------------------------- validation

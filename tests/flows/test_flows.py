@@ -31,8 +31,21 @@ def archive(demo_small):
     return url
 
 
-def test_nightly_learns_encodes_pools_and_beats_raw(archive, capsys):
+def test_nightly_learns_encodes_pools_and_beats_raw(archive, capsys, monkeypatch):
+    opened = []
+    real_open = Workspace.open.__func__
+
+    def counting_open(cls, url, **kwargs):
+        opened.append(str(url))
+        return real_open(cls, url, **kwargs)
+
+    monkeypatch.setattr(Workspace, "open", classmethod(counting_open))
     report = nightly_flow.with_options(task_runner=task_runner("threads", 2))(archive, "vib", **NIGHTLY)
+    monkeypatch.undo()
+    # Every task of the flow (train, encode and pool batches, evaluations, gate, report) runs
+    # in this process on threads: the store is opened once for all of them (none if an
+    # earlier test of the session already opened this URL).
+    assert opened.count(archive) <= 1
     assert report["outcome"] == "first"
     assert report["promoted_id"] == report["candidate_id"] == Workspace.open(archive).promoted
     assert report["encode"]["encoded"] == report["encode"]["n_chunks"] == 15

@@ -8,12 +8,12 @@ import numpy as np
 import pytest
 from matplotlib.image import imread
 
-from atomline.stages import evaluate
+from atomline.stages import encode, evaluate
 from atomline.stages import report as pictures
 from atomline.stages.drift import compare_drift, detect_drift, measure_fit
 from atomline.stages.errors import InputError
 from atomline.stages.kernels.prep import PatchGeometry
-from atomline.stages.options import DriftOptions, EvaluateOptions
+from atomline.stages.options import DriftOptions, EncodeOptions, EvaluateOptions
 
 HEIGHT, WIDTH = pictures.SIZE[1], pictures.SIZE[0]
 
@@ -122,6 +122,17 @@ def test_noisy_new_rows_drift(drifting):
     assert fit["patches"] == 500 and 0 < fit["error"] < 1
     with pytest.raises(InputError, match="range"):
         measure_fit(ws, "mixed", dict_id, slice(1797, None))
+
+
+def test_drift_codes_with_the_coder_the_codes_were_made_with(digits_workspace):
+    ws, dict_id = digits_workspace
+    ws.add_records("recoded", ws.records("digits")[:600], chunk_rows=300)
+    # No codes yet: the dictionary's own coder (OMP with 3 nonzeros).
+    assert measure_fit(ws, "recoded", dict_id, slice(0, None), max_patches=500)["nonzeros"] == pytest.approx(3.0, abs=0.01)
+    encode.prepare_encode(ws, "recoded", dict_id, EncodeOptions(coder_options={"n_nonzero": 1}))
+    assert ws.output(f"codes/{dict_id}/recoded").attrs["params"]["coder_options"]["n_nonzero"] == 1
+    # The records' codes were made with 1 nonzero: drift measures what encode produces.
+    assert measure_fit(ws, "recoded", dict_id, slice(0, None), max_patches=500)["nonzeros"] == pytest.approx(1.0, abs=0.01)
 
 
 def test_drift_rule():
