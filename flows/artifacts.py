@@ -27,10 +27,28 @@ from atomline.stages.gate import best_baseline
 from atomline.stages.kernels.scoring import SCORES
 from atomline.stages.workspace import Workspace
 
-__all__ = ["artifact_key", "score_table", "baseline_summary", "summary_markdown", "publish_evaluation", "ChunkProgress"]
+__all__ = ["artifact_key", "score_table", "baseline_summary", "summary_markdown", "publish_evaluation",
+           "ChunkProgress", "settings_lines", "SCREENING"]
 
 #: Pictures larger than this in total are listed by path only, not embedded.
 _EMBED_LIMIT = 1_500_000
+
+
+#: Said wherever a result could lead someone to act on machinery.
+SCREENING = "This is a screening aid for data work, not a maintenance or safety decision."
+
+
+def settings_lines(report: dict) -> list[str]:
+    """The values chosen from the records' shape or given, with their reasons, of a nightly
+    report (train and pool manifests); none when it trained nothing."""
+    train, pooled = report.get("train") or {}, report.get("pool") or {}
+    reasons = dict((train.get("settings") or {}).get("reasons") or {})
+    if pooled.get("regions_reason"):
+        reasons["regions"] = pooled["regions_reason"]
+    if not reasons:
+        return []
+    return ["settings (chosen from the records' shape unless given):"] + [
+        f"  {name}: {reason}" for name, reason in reasons.items()]
 
 
 def artifact_key(records: str, what: str) -> str:

@@ -49,7 +49,7 @@ from atomline.stages.pool import features_path, pool_task, prepare_pool
 from atomline.stages.train import train_task
 from atomline.stages.workspace import Workspace, open_workspace
 
-from .artifacts import ChunkProgress, artifact_key, publish_evaluation
+from .artifacts import SCREENING, ChunkProgress, artifact_key, publish_evaluation, settings_lines
 from .runners import blas_threads, check_reachable, plan_batches, task_runner
 
 #: Rendering the pictures of an evaluation as a Prefect task.
@@ -146,7 +146,8 @@ def pool_flow(workspace: str, records: str, dict_id: str | None = None,
         skipped = _record_skips(ws, features_path(dict_id, records), records)
     summary = _summarise(results, prepared, "pooled", time.perf_counter() - start)
     summary["skipped_rows"] = skipped["n_rows"]
-    summary.update(dict_id=dict_id, n_features=prepared["n_features"])
+    summary.update(dict_id=dict_id, n_features=prepared["n_features"], regions=prepared["regions"],
+                   regions_reason=prepared["regions_reason"])
     get_run_logger().info("pooled %d chunks, skipped %d", summary["pooled"], summary["skipped"])
     return summary
 
@@ -360,6 +361,10 @@ def _finish(workspace: str, records: str, report: dict, fail_on_regression: bool
         d = report["drift"]
         lines.append(f"Drift: reconstruction error {100 * d['error_change']:+.1f}%, nonzeros "
                      f"{100 * d['nonzeros_change']:+.1f}% (threshold {100 * d['threshold']:.0f}%).")
+    chosen = settings_lines(report)
+    if chosen:  # one markdown list: the heading, then one item per value
+        lines.append("\n".join([chosen[0]] + [f"- {line.strip()}" for line in chosen[1:]]))
+    lines.append(f"*{SCREENING}*")
     if cand:
         report["artifacts"] = publish_evaluation(ws, cand, records, title=f"atomline nightly: {records}",
                                                  lines=lines, picture_paths=report["pictures"])

@@ -192,7 +192,8 @@ def _run_add_records(args):
     except NotFound:
         ws, created = Workspace.open(args.workspace, create=True), True
     try:
-        return ws.add_records(args.name, source, chunk_rows=args.chunk_rows, overwrite=args.overwrite)
+        return ws.add_records(args.name, source, chunk_rows=args.chunk_rows, overwrite=args.overwrite,
+                              kind="vectors" if args.vectors else None)
     except BaseException:
         if created:  # the first records were refused: leave no empty workspace behind
             _remove_new_workspace(ws)

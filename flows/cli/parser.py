@@ -53,6 +53,9 @@ def _parser() -> argparse.ArgumentParser:
     sp.add_argument("file", help=".npy file of shape (n, L), (n, H, W) or (n, H, W, C), float32/float64; streamed")
     sp.add_argument("--chunk-rows", type=int, help="rows per Zarr chunk (default: about 4 MiB per chunk)")
     sp.add_argument("--overwrite", action="store_true", help="replace existing records of that name")
+    sp.add_argument("--vectors", action="store_true",
+                    help="rank-1 records are feature vectors, not signals: each record is one "
+                         "patch (stored with the records)")
 
     sp = command("add-labels", _run_add_labels, None, "store integer labels for data/NAME from a .npy file")
     _ws_name(sp)
@@ -179,14 +182,16 @@ def _coder_options(sp: argparse.ArgumentParser, default: str | None = "omp") -> 
 
 
 def _train_options(sp: argparse.ArgumentParser) -> None:
-    sp.add_argument("--atoms", type=int, default=128, help="number of atoms k (default: %(default)s)")
+    sp.add_argument("--atoms", type=int, help="number of atoms k (default: from the records' shape)")
     sp.add_argument("--patch-size", type=int, nargs="+",
-                    help="patch length (1-D) or height width (images); whole record if omitted")
-    sp.add_argument("--stride", type=int, nargs="+", help="step between patches (default: the patch size)")
+                    help="patch length (1-D) or height width (images) (default: from the records' "
+                         "shape; vectors are one whole patch)")
+    sp.add_argument("--stride", type=int, nargs="+",
+                    help="step between patches (default: the given patch size, or from the records' shape)")
     sp.add_argument("--method", default="online", help="dictionary learner (default: %(default)s)")
     sp.add_argument("--learner-option", action="append", metavar="KEY=VALUE",
                     help="any option of the learner, repeatable (e.g. n_passes=2)")
-    sp.add_argument("--sample", type=int, default=20_000, help="training patches sampled (default: %(default)s)")
+    sp.add_argument("--sample", type=int, help="training patches sampled (default: from the records' shape)")
     sp.add_argument("--seed", type=int, default=0, help="seed (default: %(default)s)")
     _coder_options(sp)
 
@@ -196,8 +201,9 @@ def _pool_options(sp: argparse.ArgumentParser) -> None:
                     help="how each region's coefficients become one number (default: %(default)s)")
     sp.add_argument("--no-split-sign", dest="split_sign", action="store_false",
                     help="pool |z| instead of positive and negative parts separately")
-    sp.add_argument("--regions", type=int, nargs="+", default=[4],
-                    help="equal parts per spatial axis of the patch grid (default: 4)")
+    sp.add_argument("--regions", type=int, nargs="+",
+                    help="equal parts per spatial axis of the patch grid (default: from the records' "
+                         "shape, within the dictionary's grid)")
 
 
 

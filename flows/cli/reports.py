@@ -5,7 +5,8 @@ from __future__ import annotations
 
 def _describe_records(r: dict) -> str:
     return (f"data/{r['name']}: {r['shape'][0]} records of shape {tuple(r['shape'][1:])}, {r['dtype']}, "
-            f"{r['n_chunks']} chunks of {r['chunk_rows']} rows, fingerprint {r['fingerprint']}")
+            f"{r['n_chunks']} chunks of {r['chunk_rows']} rows, fingerprint {r['fingerprint']}"
+            + (f", {r['kind']}" if r.get("kind") else ""))
 
 
 def _describe_stage(r: dict) -> str:
@@ -58,11 +59,16 @@ def _describe_nightly(r: dict) -> str:
     if r.get("already_decided"):
         lines.append(f"these inputs were decided already ({r['already_decided']}): "
                      "that decision is reported, nothing was evaluated or decided again")
+    from atomline.flows.artifacts import SCREENING, settings_lines
+
+    lines += settings_lines(r)
+    lines.append(SCREENING)
     return "\n".join(lines)
 
 
 def _describe_demo(r: dict) -> str:
     from atomline.stages.gate import best_baseline
+    from atomline.flows.artifacts import SCREENING
 
     d, cand, enc = r["dictionary"], r["candidate"], r["encode"]
     patches = enc["records"] * _patches_per_record(d["geometry"])
