@@ -279,6 +279,18 @@ def _run_evaluate(args):
                                                  report=_report_options(args))
 
 
+def _run_search(args):
+    from atomline.flows.search import search_flow
+    from atomline.stages.options import SearchOptions
+
+    from .parser import options_from_args
+
+    result = _with_runner(search_flow, args)(args.workspace, args.name, labels=args.labels,
+                                              search=options_from_args(SearchOptions, args),
+                                              recipe=args.recipe)
+    return {k: v for k, v in result.items() if k != "trials"}
+
+
 def _run_nightly(args):
     from atomline.flows import nightly_flow
 

@@ -11,15 +11,17 @@ import os
 import typing
 from typing import Callable
 
+from atomline.stages.options import SearchOptions
+
 from .commands import (
     _check_demo, _check_encode, _check_evaluate, _check_nightly, _check_pool, _check_serve,
     _check_train, _run_add_labels, _run_add_records, _run_append, _run_demo, _run_encode,
-    _run_evaluate, _run_history, _run_link, _run_nightly, _run_plots, _run_pool, _run_serve,
-    _run_show, _run_train, _run_train_encoder,
+    _run_evaluate, _run_history, _run_link, _run_nightly, _run_plots, _run_pool, _run_search,
+    _run_serve, _run_show, _run_train, _run_train_encoder,
 )
 from .reports import (
     _describe_demo, _describe_evaluation, _describe_history, _describe_nightly, _describe_plots,
-    _describe_records, _describe_serve, _describe_show, _describe_stage,
+    _describe_records, _describe_search, _describe_serve, _describe_show, _describe_stage,
 )
 
 
@@ -118,6 +120,16 @@ def _parser() -> argparse.ArgumentParser:
     sp.add_argument("--dictionary", help="dictionary id (default: the promoted one)")
     _evaluation_options(sp)
     _bad_chunk_option(sp)
+    _runner_options(sp)
+
+    sp = command("search", _run_search, _describe_search,
+                 "try configurations around the shape defaults on labelled records by successive "
+                 "halving, rank them, and store the winner as a recipe (a screening aid)")
+    _ws_name(sp)
+    sp.add_argument("--labels", help="labels array name (default: NAME)")
+    sp.add_argument("--recipe", help="store the winner as this recipe; train, pool and nightly "
+                                     "then use it for options not given")
+    add_option_flags(sp, SearchOptions)
     _runner_options(sp)
 
     sp = command("nightly", _run_nightly, _describe_nightly,
@@ -265,6 +277,10 @@ def add_option_flags(sp: argparse.ArgumentParser, cls: type) -> None:
         if kind is bool:
             sp.add_argument(option_flag(field), dest=field.name,
                             action="store_false" if default else "store_true", help=help_text)
+        elif typing.get_origin(field.type) is tuple:  # tuple[str, ...]: one or more values
+            sp.add_argument(option_flag(field), dest=field.name, type=kind, nargs="+",
+                            default=default, choices=field.metadata["choices"],
+                            help=help_text + " (default: %(default)s)")
         elif kind is dict:
             sp.add_argument(option_flag(field), dest=field.name, action="append", metavar="KEY=VALUE",
                             help=help_text)

@@ -159,3 +159,14 @@ def _describe_serve(r: dict) -> str:
     verb = "serving" if r["served"] else "would serve (dry run)"
     return (f"{verb} deployment {r['deployment']} of flow {r['flow']} on schedule {when}; "
             f"workspace {r['parameters']['workspace']}, records {r['parameters']['records']}")
+
+
+def _describe_search(r: dict) -> str:
+    from atomline.stages.search import table_text
+
+    lines = [f"search {r['search_id']}: " + ", ".join(
+        f"{s['candidates']} × {s['rows']} rows" for s in r["schedule"]), table_text(r["ranked"]),
+        f"picture: {r['picture']}"]
+    if r.get("recipe_id"):
+        lines.append(f"winner stored as recipe {r['recipe_id']}")
+    return "\n".join(lines)

@@ -55,6 +55,7 @@ def test_search_flow_maps_each_trial_and_publishes_the_ranked_table(tmp_path):
 
 def test_nightly_after_a_search_trains_and_pools_with_the_recipe(tmp_path):
     from atomline.flows import nightly_flow
+    from atomline.stages.options import EvaluateOptions, ReportOptions, TrainOptions
 
     # Without the recipe the default nightly (whole-record patch, 4 regions) cannot pool
     # 8×8 images; after the search it uses the recipe's patch, atoms and regions.
@@ -65,11 +66,33 @@ def test_nightly_after_a_search_trains_and_pools_with_the_recipe(tmp_path):
     ws.add_labels("digits", y[:300])
     found = search_flow(url, "digits", search=SMALL, recipe="digits-best")
     winner = found["winner"]
-    report = nightly_flow(url, "digits", sample_patches=3000, folds=3, n_boot=200,
-                          learning_curve=[], pictures=False)
+    report = nightly_flow(url, "digits", train=TrainOptions(sample_patches=3000),
+                          evaluate=EvaluateOptions(folds=3, n_boot=200, learning_curve=()),
+                          report=ReportOptions(pictures=False))
     dict_id = report["candidate"]["dict_id"]
     attrs = ws.load_dictionary(dict_id).attrs
     assert attrs["search_recipe"] == found["recipe_id"]
     assert (attrs["n_atoms"], attrs["geometry"]["size"]) == (winner["n_atoms"], winner["patch_size"])
     pooled = ws.output(f"features/{dict_id}/digits").attrs["params"]
     assert (pooled["regions"], pooled["reduce"]) == (winner["regions"], winner["reduce"])
+
+
+def test_search_command_prints_the_ranked_table_and_stores_the_recipe(tmp_path, capsys):
+    import json
+
+    from atomline.flows.cli import main
+
+    X, y = load_digits(return_X_y=True)
+    url = str(tmp_path / "ws")
+    ws = Workspace.open(url, create=True)
+    ws.add_records("digits", X[:200].reshape(-1, 8, 8).astype(np.float32), chunk_rows=100)
+    ws.add_labels("digits", y[:200])
+    flags = ["--budget", "3", "--reduction", "2", "--axes", "atoms", "--min-rows", "60",
+             "--max-rows", "120", "--recipe", "from-cli", "--workers", "1"]
+    assert main(["search", url, "digits", *flags, "--json"]) == 0
+    shown = json.loads(capsys.readouterr().out)
+    assert [r["rank"] for r in shown["ranked"]] == [1, 2, 3]
+    assert current_recipe(ws, "from-cli")["configuration"] == shown["winner"]
+    assert main(["search", url, "digits", *flags]) == 0
+    text = capsys.readouterr().out
+    assert "defaults" in text and "not a safety or maintenance decision" in text
