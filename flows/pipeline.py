@@ -33,10 +33,10 @@ from prefect.events import emit_event
 from prefect.futures import as_completed
 from prefect.states import Completed, Failed, State
 
-from atomline.stages.checks import check_retrain, promoted_or_named
+from atomline.stages.checks import check_retrain, check_test_records, promoted_or_named
 from atomline.stages.drift import detect_drift
 from atomline.stages.encode import codes_path, encode_task, prepare_encode
-from atomline.stages.evaluate import evaluate_task
+from atomline.stages.evaluate import coding_of, evaluate_task
 from atomline.stages.gate import (OUTCOMES, STATE_NAMES, against_references, compare,
                                   describe_references, nightly_run_key, outcome_without_comparison,
                                   record_decision, recorded_decision, required_baselines,
@@ -55,7 +55,8 @@ from .runners import blas_threads, check_reachable, plan_batches, task_runner
 #: Rendering the pictures of an evaluation as a Prefect task.
 render_task = task(render_report, name="render-pictures", cache_policy=NO_CACHE)
 
-__all__ = ["train_flow", "encode_flow", "pool_flow", "evaluate_flow", "nightly_flow", "OUTCOMES",
+__all__ = ["train_flow", "encode_flow", "pool_flow", "evaluate_flow", "nightly_flow",
+           "test_set_features", "OUTCOMES",
            "STATE_NAMES", "RETRAIN"]
 
 #: The flows' default runner options: the two workers of their decorators' task runners.
@@ -155,8 +156,12 @@ def pool_flow(workspace: str, records: str, dict_id: str | None = None,
 @flow(name="atomline-evaluate", task_runner=task_runner("threads", 1))
 def evaluate_flow(workspace: str, records: str, dict_id: str | None = None, labels: str | None = None,
                   evaluate: EvaluateOptions = EvaluateOptions(), report: ReportOptions = ReportOptions(),
-                  tag: str = "") -> dict:
+                  tag: str = "", runner: RunnerOptions = FLOW_RUNNER) -> dict:
     """Score a linear classifier on the pooled features and on the baselines.
+
+    With ``evaluate.split="test-set"`` the test records are first encoded and pooled with
+    the same dictionary, coder options and pooling as the records' features (pending
+    chunks only, in ``runner``'s batches; see :func:`test_set_features`).
 
     ``evaluate.baselines`` and ``evaluate.learning_curve`` default to the evaluate stage's
     (``BASELINES``, ``DEFAULT_CURVE``); pass ``()`` for none. Creates the markdown and
@@ -164,6 +169,7 @@ def evaluate_flow(workspace: str, records: str, dict_id: str | None = None, labe
     ``evaluate.on_bad_chunk="skip"`` leaves out the rows of features chunks that do not decode.
     """
     dict_id = dict_id or _promoted(workspace)
+    test_set_features(workspace, records, dict_id, evaluate, runner)
     manifest = evaluate_task(workspace, records, dict_id, evaluate, labels=labels, tag=tag)
     paths = render_task(workspace, manifest["run_id"], report.class_names) if report.pictures else []
     manifest["pictures"] = paths
@@ -171,6 +177,35 @@ def evaluate_flow(workspace: str, records: str, dict_id: str | None = None, labe
                        title=f"atomline evaluation of {records}", picture_paths=paths)
     _log_scores(get_run_logger(), manifest)
     return manifest
+
+
+def test_set_features(workspace: str, records: str, dict_id: str, evaluate: EvaluateOptions,
+                      runner: RunnerOptions = FLOW_RUNNER, break_lease: bool = False) -> dict | None:
+    """Encode and pool ``evaluate.test_records`` as ``records`` were (split ``test-set``).
+
+    The encode and pool options are those that made ``features/<dict_id>/<records>``
+    (``evaluate.coding_of``), so both feature sets come from the same dictionary, coder
+    options and pooling. Test records of another shape are refused before anything is
+    encoded. Runs inside a flow (the encode and pool flows' bodies, under their leases).
+
+    Returns
+    -------
+    dict or None
+        ``{"encode", "pool"}`` manifests of the test records; None for other splits.
+    """
+    if evaluate.split != "test-set":
+        return None
+    ws = Workspace.open(workspace)
+    check_test_records(ws, records, evaluate.test_records)
+    enc, pooling = coding_of(ws, records, dict_id)
+    # The bad-chunk policy is the evaluation's, as for the records' features.
+    encoded = encode_flow.fn(workspace, evaluate.test_records, dict_id=dict_id,
+                             encode=dataclasses.replace(enc, on_bad_chunk=evaluate.on_bad_chunk),
+                             runner=runner, break_lease=break_lease)
+    pooled = pool_flow.fn(workspace, evaluate.test_records, dict_id=dict_id,
+                          pool=dataclasses.replace(pooling, on_bad_chunk=evaluate.on_bad_chunk),
+                          runner=runner, break_lease=break_lease)
+    return {"encode": encoded, "pool": pooled}
 
 
 def _log_scores(logger, manifest: dict) -> None:
@@ -225,7 +260,10 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None,
     **Options.** ``encode``, ``pool`` and ``evaluate`` apply to the candidate and to the
     promoted dictionary alike (the promoted one is encoded with its own coder unless
     ``encode.coder`` names one); ``train.seed`` seeds the training sample and the drift
-    check, ``evaluate.seed`` the evaluation and the gate's bootstrap.
+    check, ``evaluate.seed`` the evaluation and the gate's bootstrap. ``evaluate.split``
+    holds for both evaluations, so the gate compares scores on the same rows; with
+    ``"test-set"`` the test records are encoded and pooled with each dictionary as the
+    records were (:func:`test_set_features`).
 
     **Retrain policy.** ``gate.retrain`` (a key of :data:`RETRAIN`) decides whether a candidate
     is trained at all. A candidate's id follows the archive's fingerprint, so with
@@ -269,6 +307,8 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None,
         logger.info("these inputs were decided by %s (%s); reporting that decision",
                     recorded["decision_id"], recorded["outcome"])
     check_retrain(gate.retrain, previous, workspace)
+    if evaluate.split == "test-set":  # refused before anything is trained
+        check_test_records(ws, records, evaluate.test_records)
 
     def features_for(dict_id: str) -> tuple[dict, dict]:
         enc = encode_flow.fn(workspace, records, dict_id=dict_id, encode=encode, runner=runner,
@@ -297,6 +337,7 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None,
     trained = train_flow.fn(workspace, records, train=train, break_lease=break_lease)
     candidate_id = trained["dict_id"]
     encoded, pooled = features_for(candidate_id)
+    test_set_features(workspace, records, candidate_id, evaluate, runner, break_lease)
     # The gate reads the candidate's comparisons with the raw records (and the baselines).
     wanted = set(evaluate.baselines) | set(required_baselines(gate.beat_baselines))
     cand_eval = evaluate_task(workspace, records, candidate_id,
@@ -310,6 +351,7 @@ def nightly_flow(workspace: str, records: str, labels: str | None = None,
     outcome = outcome_without_comparison(previous, candidate_id)
     if outcome is None:
         features_for(previous)
+        test_set_features(workspace, records, previous, evaluate, runner, break_lease)
         prev_eval = evaluate_task(workspace, records, previous,
                                   dataclasses.replace(evaluate, baselines=(), learning_curve=()),
                                   labels=labels, tag="promoted")

@@ -18,10 +18,11 @@ from __future__ import annotations
 from typing import Any
 
 from atomline.stages.checks import (check_curve, check_folds, check_record_shape, check_regions,
-                                    check_retrain,
+                                    check_retrain, check_test_records,
                                     check_sample_size, check_tolerance, check_workers,
                                     promoted_or_named, resolve_coder)
 from atomline.stages.errors import InputError, problem
+from atomline.stages.kernels.classify import check_training_classes
 from atomline.stages.kernels.learning import (TRAIN_OWN_OPTIONS, check_learner, check_learner_options,
                                               default_coder_options, takes_coder)
 from atomline.stages.kernels.prep import PatchGeometry
@@ -90,18 +91,20 @@ def check_pool(workspace: str, records: str, *, dict_id: str | None, regions: An
 
 
 def check_evaluate(workspace: str, records: str, *, dict_id: str | None, labels: str | None,
-                   folds: int, learning_curve: list[float], **_unchecked: Any) -> None:
-    """The labels must allow the cross-validation asked for; the curve's shares be valid."""
+                   folds: int, learning_curve: list[float], split: str = "kfold",
+                   test_records: str | None = None, **_unchecked: Any) -> None:
+    """The labels must allow the split asked for (a test set: of the records' shape, with
+    labels); the curve's shares be valid."""
     ws = _open(workspace)
     ws.records(records)
     ws.load_dictionary(promoted_or_named(ws, dict_id))
-    _check_labels(ws, labels or records, folds)
+    _check_labels(ws, labels or records, folds, split, records, test_records)
     check_curve(learning_curve)
 
 
 def check_nightly(workspace: str, records: str, *, retrain: str, tolerance: float, regions: Any,
                   labels: str | None, folds: int, learning_curve: list[float], workers: int,
-                  **train: Any) -> None:
+                  split: str = "kfold", test_records: str | None = None, **train: Any) -> None:
     """Everything the nightly run's stages refuse on their arguments alone.
 
     ``train`` holds the train parameters and the other nightly ones (gate, drift,
@@ -118,7 +121,7 @@ def check_nightly(workspace: str, records: str, *, retrain: str, tolerance: floa
         grid = ws.load_dictionary(ws.promoted).geometry().grid
     if regions is not None:  # otherwise chosen within the grid
         check_regions(grid, _tuple(regions))
-    _check_labels(ws, labels or records, folds)
+    _check_labels(ws, labels or records, folds, split, records, test_records)
     check_curve(learning_curve)
 
 
@@ -162,8 +165,15 @@ def _check_coder(coder: str, n_atoms: int, options: dict) -> None:
         code_width(coder, n_atoms, **options)
 
 
-def _check_labels(ws: Workspace, name: str, folds: int) -> None:
-    check_folds(ws.labels(name), folds)
+def _check_labels(ws: Workspace, name: str, folds: int, split: str = "kfold",
+                  records: str | None = None, test_records: str | None = None) -> None:
+    if split == "kfold":
+        check_folds(ws.labels(name), folds)
+        return
+    check_training_classes(ws.labels(name))
+    if split == "test-set" and test_records:  # without one, the options refuse the split
+        check_test_records(ws, records, test_records)
+        ws.labels(test_records)  # the test rows are scored against their own labels
 
 
 def _first_line(exc: BaseException) -> str:

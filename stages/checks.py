@@ -16,7 +16,7 @@ from .kernels.classify import check_folds
 from .kernels.pooling import check_regions
 
 __all__ = ["check_workers", "check_sample_size", "check_regions", "check_curve", "check_folds",
-           "check_tolerance", "check_record_shape", "promoted_or_named", "resolve_coder",
+           "check_tolerance", "check_record_shape", "check_test_records", "promoted_or_named", "resolve_coder",
            "check_retrain"]
 
 
@@ -44,6 +44,28 @@ def check_tolerance(tolerance: float) -> None:
     """The promotion gate's margin is not negative."""
     if tolerance < 0:
         raise InputError(problem("tolerance", "a margin ≥ 0", str(tolerance), "Use e.g. 0.01."))
+
+
+def check_test_records(ws, records: str, test_records: str) -> None:
+    """A test set is other records with rows of the records' shape (so the dictionary that
+    codes the records codes them too). Reads metadata only.
+
+    Parameters
+    ----------
+    ws : Workspace
+    records, test_records : str
+        The training records and the test records named by ``--test-records``.
+    """
+    if test_records == records:
+        raise InputError(problem("test_records", "records other than the evaluated ones",
+                                 repr(test_records), "Name a separate test set, or use --split kfold."))
+    train_shape = tuple(ws.records(records).shape[1:])
+    test_shape = tuple(ws.records(test_records).shape[1:])
+    if test_shape != train_shape:
+        raise InputError(problem(f"test records {test_records!r}",
+                                 f"rows of the training records' shape {train_shape}",
+                                 f"rows of shape {test_shape}",
+                                 "Score a test set of the same width and shape as the records."))
 
 
 def promoted_or_named(ws, dict_id: str | None) -> str:

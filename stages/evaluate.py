@@ -13,7 +13,7 @@ Protocol
    ``test-set``  the classifier is fitted on the rows of 1. and scores every row of the
                  named ``test_records`` (labels of the same name) that has features; the
                  test records must have rows of the records' shape and features pooled by
-                 the same dictionary, coder and pooling (:func:`check_test_records`; the
+                 the same dictionary, coder and pooling (:func:`~.checks.check_test_records`; the
                  flows encode and pool them).
    ``time``      row order is time: the rows of 1. are the newest ``max_rows`` (not a
                  sample), the older ones train and the newest ``ceil(test_share · n)``
@@ -69,6 +69,7 @@ from prefect import task
 from prefect.cache_policies import NO_CACHE
 from threadpoolctl import threadpool_limits
 
+from .checks import check_test_records
 from .encode import codes_path
 from .errors import BadChunk, InputError, problem
 from .pool import features_path
@@ -80,8 +81,8 @@ from .kernels.scoring import confusion, paired_bootstrap, scores_from_confusion
 from .options import BASELINES, CLASSIFIERS, DEFAULT_CURVE, EncodeOptions, EvaluateOptions, PoolOptions
 from .workspace import Workspace, fingerprint_params, iter_row_chunks, open_workspace
 
-__all__ = ["evaluate_features", "evaluate_task", "evaluation_key", "check_test_records",
-           "coding_of", "CLASSIFIERS", "BASELINES"]
+__all__ = ["evaluate_features", "evaluate_task", "evaluation_key", "coding_of",
+           "CLASSIFIERS", "BASELINES"]
 
 # CLASSIFIERS, BASELINES and DEFAULT_CURVE are declared with the options; on the learning
 # curve the full share is the main result and is added to the curve.
@@ -151,7 +152,8 @@ def evaluate_features(
     ws = open_workspace(workspace)
     test_records = options.test_records if split == "test-set" else None
     if test_records is not None:
-        check_test_records(ws, records, test_records, dict_id)
+        check_test_records(ws, records, test_records)
+        _check_test_features(ws, records, test_records, dict_id)
     labels_name = labels or records
     out, y_all, lacking = _labelled_features(ws, records, dict_id, labels_name, on_bad_chunk)
     rows = labelled_rows(y_all, max_rows, seed, folds if split == "kfold" else None,
@@ -257,33 +259,12 @@ def evaluate_features(
     return _manifest(ws.evaluation(run_id), reused=False)
 
 
-def check_test_records(ws: Workspace, records: str, test_records: str, dict_id: str | None = None) -> None:
-    """Refuse test records that cannot be scored beside ``records``.
-
-    They must be other records of the same shape per row (so the same dictionary codes
-    them), and, when ``dict_id`` is given and their features exist, pooled with the same
-    coder and pooling as the training records' (features of the same width).
-
-    Parameters
-    ----------
-    ws : Workspace
-    records, test_records : str
-    dict_id : str, optional
-    """
-    if test_records == records:
-        raise InputError(problem("test_records", "records other than the evaluated ones",
-                                 repr(test_records), "Name a separate test set, or use --split kfold."))
-    train_shape = tuple(ws.records(records).shape[1:])
-    test_shape = tuple(ws.records(test_records).shape[1:])
-    if test_shape != train_shape:
-        raise InputError(problem(f"test records {test_records!r}",
-                                 f"rows of the training records' shape {train_shape}",
-                                 f"rows of shape {test_shape}",
-                                 "Score a test set of the same width and shape as the records."))
-    if dict_id is None:
-        return
+def _check_test_features(ws: Workspace, records: str, test_records: str, dict_id: str) -> None:
+    """Refuse test records whose features were made otherwise than the records' (another
+    coder, coder options or pooling, so another width or meaning); silent while either is
+    not pooled yet (the check of complete features names that)."""
     if not all(ws.has_output(features_path(dict_id, r)) for r in (records, test_records)):
-        return  # not pooled yet: the stage's check of complete features names what is missing
+        return
     train_out, test_out = (ws.output(features_path(dict_id, r)) for r in (records, test_records))
     same = {"coder": (ws.output(codes_path(dict_id, r)).attrs["params"] for r in (records, test_records)),
             "pooling": (o.attrs["params"] for o in (train_out, test_out))}

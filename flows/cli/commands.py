@@ -68,7 +68,8 @@ def _pool_params(args: argparse.Namespace) -> dict:
 
 
 def _evaluation_params(args: argparse.Namespace) -> dict:
-    return dict(labels=args.labels, folds=args.folds, classifier=args.classifier,
+    return dict(labels=args.labels, folds=args.folds, split=args.split,
+                test_records=args.test_records, test_share=args.test_share, classifier=args.classifier,
                 baselines=args.baselines, learning_curve=args.curve, n_boot=args.n_boot,
                 max_rows=args.max_rows, pictures=args.pictures, class_names=args.class_names)
 
@@ -86,7 +87,8 @@ def _evaluate_options(args: argparse.Namespace, **more: Any):
 
     return EvaluateOptions(folds=args.folds, classifier=args.classifier, baselines=args.baselines,
                            learning_curve=args.curve, n_boot=args.n_boot, max_rows=args.max_rows,
-                           on_bad_chunk=args.on_bad_chunk, **more)
+                           on_bad_chunk=args.on_bad_chunk, split=args.split,
+                           test_records=args.test_records, test_share=args.test_share, **more)
 
 
 def _report_options(args: argparse.Namespace):
@@ -164,6 +166,7 @@ def _check_evaluate(args):
 
     _runner(args)  # the runner options, checked as they are made (workers, kind, address)
     preflight.check_evaluate(args.workspace, args.name, dict_id=args.dictionary, **_evaluation_params(args))
+    _evaluate_options(args)  # the evaluation's options, checked as they are made (split, ...)
 
 
 def _check_nightly(args):
@@ -171,6 +174,7 @@ def _check_nightly(args):
 
     _runner(args)  # the runner options, checked as they are made (workers, kind, address)
     preflight.check_nightly(args.workspace, args.name, **_nightly_params(args))
+    _evaluate_options(args)  # the evaluation's options, checked as they are made (split, ...)
 
 
 def _check_serve(args):

@@ -219,8 +219,15 @@ def _pool_options(sp: argparse.ArgumentParser) -> None:
 
 
 
+#: The evaluate options whose flags are generated from their declarations.
+SPLIT_FIELDS = ("split", "test_records", "test_share")
+
+
 def _evaluation_options(sp: argparse.ArgumentParser) -> None:
+    from atomline.stages.options import EvaluateOptions
+
     sp.add_argument("--labels", help="labels array name (default: NAME)")
+    add_option_flags(sp, EvaluateOptions, only=SPLIT_FIELDS)
     sp.add_argument("--folds", type=int, default=5, help="stratified cross-validation folds (default: %(default)s)")
     sp.add_argument("--classifier", choices=("logistic", "linear-svm"), default="logistic",
                     help="linear classifier on standardised features (default: %(default)s)")
@@ -265,12 +272,15 @@ def option_flag(field: dataclasses.Field) -> str:
     return field.metadata.get("flag") or "--" + field.name.replace("_", "-")
 
 
-def add_option_flags(sp: argparse.ArgumentParser, cls: type) -> None:
+def add_option_flags(sp: argparse.ArgumentParser, cls: type, only: tuple[str, ...] | None = None) -> None:
     """One flag per field of an options class (``atomline.stages.options``), made from its
     declaration: flag name, type, default, choices and help. Dict fields are repeatable
-    ``KEY=VALUE`` flags; a bool is a switch that turns its default around."""
+    ``KEY=VALUE`` flags; a bool is a switch that turns its default around. ``only``: these
+    fields alone (for a command whose other flags of the class are still written by hand)."""
     defaults = cls()
     for field in dataclasses.fields(cls):
+        if only is not None and field.name not in only:
+            continue
         default = getattr(defaults, field.name)
         help_text = field.metadata["help"]
         kind = _kind(field)

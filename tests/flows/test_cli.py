@@ -170,6 +170,10 @@ def trained(labelled, demo_small):
     (["pool", "{ws}", "vib", "--regions", "17", "--dictionary", "{d}"], "regions: expected 1..[16] parts per axis"),
     (["evaluate", "{ws}", "vib", "--folds", "1", "--dictionary", "{d}"], "folds: expected at least 2, found 1"),
     (["evaluate", "{ws}", "vib", "--labels", "short", "--dictionary", "{d}"], "labels/short"),
+    (["evaluate", "{ws}", "vib", "--split", "test-set", "--test-records", "short", "--dictionary", "{d}"],
+     "test records 'short': expected rows of the training records' shape (2048,), found rows of shape (1024,)"),
+    (["evaluate", "{ws}", "vib", "--split", "test-set", "--dictionary", "{d}"], "test_records: expected"),
+    (["nightly", "{ws}", "vib", "--split", "test-set", "--test-records", "short"], "test records 'short'"),
     (["train", "{ws}", "vib", "--coder-option", "bogus=1"], "options of coder 'omp': expected option names"),
 ])
 def test_mistakes_against_a_dictionary_refused_before_any_server(trained, capsys, no_server, argv, words):

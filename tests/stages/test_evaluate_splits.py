@@ -12,7 +12,7 @@ from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 from threadpoolctl import threadpool_limits
 
-from atomline.stages import encode, evaluate, gate, pool, train
+from atomline.stages import checks, encode, evaluate, gate, pool, train
 from atomline.stages.errors import InputError
 from atomline.stages.kernels.classify import time_split
 from atomline.stages.options import EvaluateOptions, PoolOptions, TrainOptions, deciding
@@ -120,7 +120,8 @@ def test_test_records_coded_like_the_records_give_the_same_features(held_out):
             ws, "digits_test_again", dict_id, enc)["pending"], enc)
         pool.pool_chunks(ws, "digits_test_again", dict_id, pool.prepare_pool(
             ws, "digits_test_again", dict_id, pooling)["pending"], pooling)
-    evaluate.check_test_records(ws, "digits_train", "digits_test_again", dict_id)  # accepted
+    checks.check_test_records(ws, "digits_train", "digits_test_again")  # accepted
+    evaluate._check_test_features(ws, "digits_train", "digits_test_again", dict_id)
     np.testing.assert_array_equal(ws.output(f"features/{dict_id}/digits_test_again").group["values"][:],
                                   ws.output(f"features/{dict_id}/digits_test").group["values"][:])
 
@@ -133,7 +134,7 @@ def test_test_set_of_another_shape_is_refused(held_out):
         evaluate.evaluate_features(ws, "digits_train", dict_id,
                                    EvaluateOptions(split="test-set", test_records="small"))
     with pytest.raises(InputError, match="records other than"):
-        evaluate.check_test_records(ws, "digits_train", "digits_train")
+        checks.check_test_records(ws, "digits_train", "digits_train")
 
 
 def test_test_set_pooled_otherwise_is_refused():
