@@ -59,7 +59,9 @@ def _groups() -> dict:
 
 def test_every_group_of_the_nightly_flow_is_covered():
     groups = _groups()
-    assert set(groups) == set(opts.OPTION_GROUPS) == set(OTHER)
+    # Every group but the search's is a nightly parameter: a search is its own flow, and its
+    # winner reaches the nightly run through the stored recipe, not through the run's options.
+    assert set(groups) == set(opts.OPTION_GROUPS) - {"search"} == set(OTHER)
     for name, cls in groups.items():
         assert set(OTHER[name]) == {f.name for f in dataclasses.fields(cls)}, name
         assert inspect.signature(nightly_flow.fn).parameters[name].annotation in (cls, cls.__name__)
