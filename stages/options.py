@@ -39,6 +39,8 @@ from .checks import check_curve, check_sample_size, check_tolerance, check_worke
 from .errors import InputError, problem
 from .kernels import coding, learning
 from .kernels._records import keyword_options, refuse_unknown_options
+from .kernels.classify import CLASSIFIERS  # the classifier kernels' own list
+from .kernels.pooling import REDUCTIONS  # the pooling kernels' own list
 from .kernels.scoring import SCORES
 from .kernels.search import AXES
 
@@ -53,10 +55,6 @@ CODERS = tuple(sorted(coding.METHODS))
 LEARNERS = tuple(sorted(learning.METHODS))
 #: What a stage does with a missing or unreadable input chunk.
 BAD_CHUNK_CHOICES = ("stop", "skip")
-#: How pooling turns one region's coefficients into one number.
-REDUCTIONS = ("max", "mean")
-#: Linear classifiers of the evaluate stage.
-CLASSIFIERS = ("logistic", "linear-svm")
 #: Feature sets the sparse features are compared with.
 BASELINES = ("raw", "random_patches", "pca")
 #: Shares of each fold's training rows on the learning curve.

@@ -41,7 +41,7 @@ from .kernels.search import candidates, rank, rung_rows, score_trial, trial_cost
 from .kernels.shape_rules import default_settings
 from .options import SearchOptions
 from .report import search_png
-from .workspace import Workspace
+from .workspace import Workspace, open_workspace
 from .workspace.trials import append_trial, save_recipe
 
 __all__ = ["search_configurations", "score_rows", "store_recipe", "ranked_table", "table_text",
@@ -83,7 +83,7 @@ def search_configurations(workspace: Workspace | str, records: str, labels: str,
         per configuration, best first: :func:`ranked_table`), ``winner`` (its
         configuration), ``trials`` (every trial, in log order) and ``seconds``.
     """
-    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    ws = open_workspace(workspace)
     arr = ws.records(records)
     labels_all = ws.labels(labels)
     if labels_all.shape[0] != arr.shape[0]:
@@ -157,7 +157,7 @@ def score_rows(workspace: Workspace | str, records: str, rows: np.ndarray, y: np
     dict
         The trial's scores (:func:`~.kernels.search.score_trial`).
     """
-    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    ws = open_workspace(workspace)
     arr = ws.records(records)
     chunk = int(arr.chunks[0])
     X = take_rows(np.asarray(rows), chunk, lambda c: np.asarray(arr[c * chunk:(c + 1) * chunk]))
@@ -211,7 +211,7 @@ def store_picture(workspace: Workspace | str, result: dict) -> str:
     str
         The picture's path in the workspace.
     """
-    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    ws = open_workspace(workspace)
     png = search_png(result["trials"])
     return ws.save_picture(result["search_id"], "search", png,
                            {"title": "search: accuracy against cost", "note": SCREENING_NOTE})
@@ -232,7 +232,7 @@ def store_recipe(workspace: Workspace | str, result: dict, name: str) -> str:
     str
         The recipe entry id.
     """
-    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace)
+    ws = open_workspace(workspace)
     best = result["ranked"][0]
     first = result["trials"][0]
     return save_recipe(ws, name, best["configuration"], {
